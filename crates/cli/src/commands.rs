@@ -1,0 +1,458 @@
+//! The commands' bodies.
+
+use crate::exit;
+use anyhow::{bail, Context, Result};
+use chrono::NaiveDate;
+use datafusion::prelude::SessionContext;
+use daymark_engine::{
+    check_against_schemas, inspect_sources, register_sources, schemas_of, snapshot_query,
+    SourceReport,
+};
+use daymark_spec::{Diagnostic, FeatureDef, Knowledge, Pipeline, Population, SpecErrors};
+use daymark_worldgen::{generate as generate_world, WorldConfig};
+use serde_json::json;
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+/// The demo pipeline, shipped inside the binary so `daymark demo` works from any folder.
+const DEMO_PIPELINE: &str = include_str!("../../../pipelines/demo.yaml");
+
+/// Arguments of `daymark generate`.
+#[derive(clap::Args)]
+pub struct GenerateArgs {
+    /// Output folder (one sub-folder per source).
+    #[arg(long)]
+    out: PathBuf,
+    /// Customers over the world's whole history.
+    #[arg(long, default_value_t = 5000)]
+    customers: u32,
+    /// Days of activity logs.
+    #[arg(long, default_value_t = 120)]
+    days: u32,
+    /// First day of activity logs (YYYY-MM-DD).
+    #[arg(long, default_value = "2026-01-01")]
+    start: String,
+    /// Seed: the same arguments give byte-identical files.
+    #[arg(long, default_value_t = 7)]
+    seed: u64,
+    /// Add malformed rows (null keys, negative durations, future timestamps) and one
+    /// unreadable file, for error-handling tests.
+    #[arg(long)]
+    dirty: bool,
+    /// Share of rows arriving 1 to 5 days late.
+    #[arg(long, default_value_t = 0.02)]
+    late_share: f64,
+    /// Share of rows delivered twice.
+    #[arg(long, default_value_t = 0.005)]
+    duplicate_share: f64,
+    /// Worker threads (0: one per core).
+    #[arg(long, default_value_t = 0)]
+    threads: usize,
+}
+
+fn print_errors(e: &SpecErrors) {
+    eprint!("{e}");
+}
+
+fn load(path: &Path) -> Result<Pipeline, u8> {
+    daymark_spec::load_file(path).map_err(|e| {
+        print_errors(&e);
+        exit::INVALID
+    })
+}
+
+fn human_bytes(n: u64) -> String {
+    let units = ["B", "KiB", "MiB", "GiB", "TiB"];
+    let mut x = n as f64;
+    let mut u = 0;
+    while x >= 1024.0 && u + 1 < units.len() {
+        x /= 1024.0;
+        u += 1;
+    }
+    if u == 0 {
+        format!("{n} B")
+    } else {
+        format!("{x:.1} {}", units[u])
+    }
+}
+
+/// Runs the checks that need the data; returns the reports and every problem.
+async fn inspect(
+    pipeline: &Pipeline,
+    file: &Path,
+) -> (
+    BTreeMap<String, SourceReport>,
+    Vec<Diagnostic>,
+    daymark_engine::FeatureTypes,
+) {
+    let reports = inspect_sources(pipeline).await;
+    let mut problems: Vec<Diagnostic> = reports.values().flat_map(|r| r.problems.clone()).collect();
+    let (mut schema_problems, types) = check_against_schemas(pipeline, &schemas_of(&reports));
+    problems.append(&mut schema_problems);
+    if let Ok(text) = std::fs::read_to_string(file) {
+        daymark_spec::locate(&mut problems, &text);
+    }
+    for d in &mut problems {
+        d.file = Some(file.to_path_buf());
+    }
+    (reports, problems, types)
+}
+
+/// `daymark check`.
+pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
+    let pipeline = match load(path) {
+        Ok(p) => p,
+        Err(code) => return Ok(code),
+    };
+    let (reports, problems, types) = inspect(&pipeline, path).await;
+    if as_json {
+        let sources: serde_json::Map<String, serde_json::Value> = reports
+            .iter()
+            .map(|(name, r)| {
+                let src = &pipeline.sources[name];
+                (
+                    name.clone(),
+                    json!({
+                        "location": r.location.as_ref().map(|l| l.display()),
+                        "partitions": r.listing.days.len(),
+                        "first_day": r.range().map(|x| x.0.to_string()),
+                        "last_day": r.range().map(|x| x.1.to_string()),
+                        "missing_days": r.gaps().iter().map(|d| d.to_string()).collect::<Vec<_>>(),
+                        "files": r.listing.files().count(),
+                        "bytes": r.listing.bytes(),
+                        "rows": r.rows,
+                        "knowledge": src.knowledge.as_str(),
+                        "columns": r.schema.as_ref().map(|s| s.fields().iter().map(|f| json!({"name": f.name(), "type": f.data_type().to_string()})).collect::<Vec<_>>()),
+                    }),
+                )
+            })
+            .collect();
+        let features: Vec<serde_json::Value> = pipeline
+            .features
+            .iter()
+            .map(|f| {
+                let mut v = json!({"name": f.name, "hash": f.hash, "type": types.get(&f.name).map(|t| t.to_string())});
+                match &f.def {
+                    FeatureDef::Aggregate { source, agg, expr, filter, window } => {
+                        v["source"] = json!(source);
+                        v["agg"] = json!(agg.as_str());
+                        v["expr"] = json!(expr);
+                        v["filter"] = json!(filter);
+                        v["window"] = json!(window.suffix());
+                    }
+                    FeatureDef::Derived { op, left, right } => {
+                        v[op.as_str()] = json!([left, right]);
+                    }
+                }
+                v
+            })
+            .collect();
+        let report = json!({
+            "pipeline": pipeline.file.name,
+            "hash": pipeline.hash,
+            "timezone": pipeline.file.timezone,
+            "cutoff_time": pipeline.file.cutoff_time,
+            "sources": sources,
+            "features": features,
+            "problems": problems.iter().map(|d| json!({"line": d.line, "column": d.column, "path": d.path, "message": d.message})).collect::<Vec<_>>(),
+        });
+        println!("{}", serde_json::to_string_pretty(&report)?);
+        return Ok(if problems.is_empty() {
+            exit::OK
+        } else {
+            exit::INVALID
+        });
+    }
+
+    println!("pipeline {} ({})", pipeline.file.name, path.display());
+    println!("  hash {}", pipeline.hash);
+    println!(
+        "  days in {}, cutoff {} local time",
+        pipeline.file.timezone, pipeline.file.cutoff_time
+    );
+    println!();
+    println!("sources:");
+    for (name, r) in &reports {
+        let src = &pipeline.sources[name];
+        println!(
+            "  {name}: {}",
+            r.location
+                .as_ref()
+                .map(|l| l.display())
+                .unwrap_or_else(|| src.spec.location.clone())
+        );
+        match r.range() {
+            Some((a, b)) => {
+                let gaps = r.gaps();
+                let gap_text = if gaps.is_empty() {
+                    "no missing days".to_string()
+                } else {
+                    format!("{} missing day(s), first {}", gaps.len(), gaps[0])
+                };
+                println!(
+                    "    {} day partitions {a} .. {b} ({gap_text}), {} files, {}, {} rows in footers",
+                    r.listing.days.len(),
+                    r.listing.files().count(),
+                    human_bytes(r.listing.bytes()),
+                    r.rows
+                );
+            }
+            None => println!("    no day partitions found"),
+        }
+        println!(
+            "    key {}, event time {}, arrival time {}, knowledge {}, de-duplicated on [{}]",
+            src.key,
+            src.spec.event_time,
+            src.spec.arrival_time.as_deref().unwrap_or("-"),
+            src.knowledge.as_str(),
+            src.spec.dedupe_on.join(", ")
+        );
+        if let Some(s) = &r.schema {
+            let cols: Vec<String> = s
+                .fields()
+                .iter()
+                .map(|f| format!("{} {}", f.name(), f.data_type()))
+                .collect();
+            println!("    columns: {}", cols.join(", "));
+        }
+        if !r.listing.ignored.is_empty() {
+            println!(
+                "    ignored (not in a day partition): {}",
+                r.listing.ignored.len()
+            );
+        }
+    }
+    println!();
+    match &pipeline.population {
+        Population::State(s) => println!(
+            "population: keys whose latest `{}` in {} is one of [{}] as of the cutoff",
+            s.column,
+            s.source,
+            s.values.join(", ")
+        ),
+        Population::RecentActivity(a) => println!(
+            "population: keys with an event in {} within {} before the cutoff{}",
+            a.source,
+            a.within,
+            a.filter
+                .as_ref()
+                .map(|f| format!(" where {f}"))
+                .unwrap_or_default()
+        ),
+    }
+    println!();
+    println!("features ({}):", pipeline.features.len());
+    let width = pipeline
+        .features
+        .iter()
+        .map(|f| f.name.len())
+        .max()
+        .unwrap_or(10);
+    for f in &pipeline.features {
+        let ty = types
+            .get(&f.name)
+            .map(|t| t.to_string())
+            .unwrap_or_else(|| "?".into());
+        let what = match &f.def {
+            FeatureDef::Aggregate {
+                source,
+                agg,
+                expr,
+                filter,
+                window,
+            } => format!(
+                "{}({}) over {window} of {source}{}",
+                agg.as_str(),
+                expr.as_deref().unwrap_or(""),
+                filter
+                    .as_ref()
+                    .map(|f| format!(" where {f}"))
+                    .unwrap_or_default()
+            ),
+            FeatureDef::Derived { op, left, right } => format!("{}({left}, {right})", op.as_str()),
+        };
+        println!("  {:width$}  {:8}  {what}", f.name, ty);
+    }
+    if let Some(l) = &pipeline.label {
+        println!();
+        println!(
+            "label: {} from {}: `{}` within {}d after the cutoff, not followed within {}d by `{}`",
+            l.name,
+            l.source,
+            l.ended,
+            l.horizon.0,
+            l.grace.0,
+            l.resumed.as_deref().unwrap_or("(nothing)")
+        );
+    }
+    println!();
+    if problems.is_empty() {
+        println!("ok: no problems found");
+        Ok(exit::OK)
+    } else {
+        eprintln!(
+            "{} problem{}:",
+            problems.len(),
+            if problems.len() == 1 { "" } else { "s" }
+        );
+        for d in &problems {
+            eprintln!("  {d}");
+        }
+        Ok(exit::INVALID)
+    }
+}
+
+/// `daymark explain`.
+pub async fn explain(
+    path: &Path,
+    date: &str,
+    knowledge: Option<&str>,
+    plan: bool,
+    brief: bool,
+) -> Result<u8> {
+    let day: NaiveDate = date
+        .parse()
+        .with_context(|| format!("`{date}` is not a date (YYYY-MM-DD)"))?;
+    let mode = match knowledge {
+        None => None,
+        Some("as-known") => Some(Knowledge::AsKnown),
+        Some("event-time") => Some(Knowledge::EventTime),
+        Some(other) => bail!("unknown knowledge mode `{other}`: use `as-known` or `event-time`"),
+    };
+    let pipeline = match load(path) {
+        Ok(p) => p,
+        Err(code) => return Ok(code),
+    };
+    let q = snapshot_query(&pipeline, day, mode);
+    println!("snapshot {day} of {}", pipeline.file.name);
+    println!(
+        "  cutoff {} ({} in {})",
+        q.cutoff.format("%Y-%m-%dT%H:%M:%SZ"),
+        pipeline.file.cutoff_time,
+        pipeline.file.timezone
+    );
+    for (name, r) in &q.reads {
+        println!(
+            "  reads {name}: partitions {} .. {}, {}",
+            r.first_day
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "(first)".into()),
+            r.last_day,
+            match r.knowledge {
+                Knowledge::AsKnown => "as-known (event time and arrival time before the cutoff)",
+                Knowledge::EventTime => "event-time (event time before the cutoff)",
+            }
+        );
+    }
+    if !brief {
+        println!();
+        println!("-- the snapshot as one SQL query (the naive path: raw events filtered for this cutoff)");
+        println!("{};", q.sql);
+    }
+    if plan {
+        let (reports, problems, _) = inspect(&pipeline, path).await;
+        if !problems.is_empty() {
+            for d in &problems {
+                eprintln!("  {d}");
+            }
+            return Ok(exit::INVALID);
+        }
+        let ctx = SessionContext::new();
+        register_sources(&ctx, &pipeline, &reports).await?;
+        let df = ctx
+            .sql(&q.sql)
+            .await
+            .context("planning the snapshot query")?;
+        let optimized = df
+            .into_optimized_plan()
+            .context("optimising the snapshot query")?;
+        if brief {
+            println!(
+                "  DataFusion planned the snapshot query: {} plan lines",
+                optimized.display_indent().to_string().lines().count()
+            );
+        } else {
+            println!();
+            println!("-- DataFusion's optimised logical plan");
+            println!("{}", optimized.display_indent());
+        }
+    }
+    Ok(exit::OK)
+}
+
+/// `daymark generate`.
+pub fn generate(args: GenerateArgs) -> Result<u8> {
+    let start: NaiveDate = args
+        .start
+        .parse()
+        .with_context(|| format!("`{}` is not a date (YYYY-MM-DD)", args.start))?;
+    let mut cfg = WorldConfig::new(&args.out, args.customers, args.days);
+    cfg.start = start;
+    cfg.seed = args.seed;
+    cfg.dirty = args.dirty;
+    cfg.late_share = args.late_share;
+    cfg.duplicate_share = args.duplicate_share;
+    cfg.threads = args.threads;
+    let t0 = std::time::Instant::now();
+    let summary = generate_world(&cfg)?;
+    let secs = t0.elapsed().as_secs_f64();
+    let total: u64 = summary.sources.values().map(|s| s.rows).sum();
+    for (name, s) in &summary.sources {
+        println!(
+            "{name}: {} rows in {} files ({} late, {} null keys, {} negative durations, {} future times)",
+            s.rows, s.files, s.late_rows, s.null_key_rows, s.negative_duration_rows, s.future_time_rows
+        );
+    }
+    for f in &summary.corrupt_files {
+        println!("planted unreadable file: {f}");
+    }
+    println!(
+        "wrote {total} rows to {} in {secs:.1} s ({:.0} rows/s)",
+        args.out.display(),
+        total as f64 / secs.max(1e-9)
+    );
+    Ok(exit::OK)
+}
+
+/// `daymark demo`.
+pub async fn demo(dir: &Path, customers: u32, days: u32) -> Result<u8> {
+    let world = dir.join("world");
+    if world.join("world.json").exists() {
+        println!("using the demo world in {}", world.display());
+    } else {
+        println!(
+            "generating the demo world in {} ({customers} customers, {days} days)...",
+            world.display()
+        );
+        let t0 = std::time::Instant::now();
+        let cfg = WorldConfig::new(&world, customers, days);
+        let summary = generate_world(&cfg)?;
+        let rows: u64 = summary.sources.values().map(|s| s.rows).sum();
+        println!("  {rows} rows in {:.1} s", t0.elapsed().as_secs_f64());
+    }
+    std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    let pipeline_path = dir.join("pipeline.yaml");
+    let text = DEMO_PIPELINE.replace("../demo-data/", "");
+    std::fs::write(&pipeline_path, text)
+        .with_context(|| format!("writing {}", pipeline_path.display()))?;
+    println!();
+    let code = check(&pipeline_path, false).await?;
+    if code != exit::OK {
+        return Ok(code);
+    }
+    let manifest: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(world.join("world.json"))?)?;
+    let start: NaiveDate = manifest["start"].as_str().unwrap_or("2026-01-01").parse()?;
+    let ndays = manifest["days"].as_i64().unwrap_or(days as i64);
+    let last = start + chrono::Duration::days(ndays);
+    println!();
+    let code = explain(&pipeline_path, &last.to_string(), None, true, true).await?;
+    println!();
+    println!("demo world: {}", world.display());
+    println!("pipeline:   {}", pipeline_path.display());
+    println!(
+        "next: `daymark explain {} --date {last} --plan` shows a day's plan again.",
+        pipeline_path.display()
+    );
+    Ok(code)
+}

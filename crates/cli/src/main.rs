@@ -1,0 +1,125 @@
+//! The `daymark` command line.
+
+mod commands;
+
+use clap::{Parser, Subcommand};
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+/// Daily, point-in-time-correct customer feature snapshots from partitioned Parquet logs.
+#[derive(Parser)]
+#[command(name = "daymark", version, about, long_about = None)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    /// Check a pipeline file against its sources and print what it reads and computes.
+    ///
+    /// Example: daymark check pipelines/demo.yaml
+    #[command(
+        after_help = "Example:\n  daymark check pipelines/demo.yaml\n  daymark check pipelines/demo.yaml --json"
+    )]
+    Check {
+        /// The pipeline file.
+        pipeline: PathBuf,
+        /// Print a JSON report instead of text.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Show what would run for one snapshot day: cutoff, partitions read, and the SQL.
+    #[command(
+        after_help = "Example:\n  daymark explain pipelines/demo.yaml --date 2026-03-09 --plan"
+    )]
+    Explain {
+        /// The pipeline file.
+        pipeline: PathBuf,
+        /// The snapshot day (YYYY-MM-DD).
+        #[arg(long)]
+        date: String,
+        /// Knowledge mode for every source: `as-known` or `event-time` (default: each
+        /// source's own).
+        #[arg(long)]
+        knowledge: Option<String>,
+        /// Also print DataFusion's optimised logical plan of the query.
+        #[arg(long)]
+        plan: bool,
+    },
+    /// Generate the demo world's event logs (an invented streaming service).
+    #[command(
+        after_help = "Example:\n  daymark generate --out demo-data/world --customers 5000 --days 120 --start 2026-01-01 --seed 7"
+    )]
+    Generate(commands::GenerateArgs),
+    /// Generate the demo world if absent, then check and explain the demo pipeline on it.
+    #[command(
+        after_help = "Example:\n  daymark demo\n  daymark demo --dir /tmp/daymark-demo --customers 20000"
+    )]
+    Demo {
+        /// Folder for the demo world and its pipeline file.
+        #[arg(long, default_value = "demo-data")]
+        dir: PathBuf,
+        /// Customers in the demo world (used only when generating it).
+        #[arg(long, default_value_t = 4000)]
+        customers: u32,
+        /// Days of logs in the demo world (used only when generating it).
+        #[arg(long, default_value_t = 120)]
+        days: u32,
+    },
+    /// Print the JSON Schema of pipeline files (for editors).
+    #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
+    Schema,
+}
+
+/// Exit codes (documented in the README).
+pub mod exit {
+    /// Success.
+    pub const OK: u8 = 0;
+    /// The pipeline file or its inputs are invalid.
+    pub const INVALID: u8 = 2;
+    /// Anything else went wrong (I/O, engine).
+    pub const FAILED: u8 = 1;
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("error: cannot start the async runtime: {e}");
+            return ExitCode::from(exit::FAILED);
+        }
+    };
+    let result = runtime.block_on(async {
+        match cli.command {
+            Command::Check { pipeline, json } => commands::check(&pipeline, json).await,
+            Command::Explain {
+                pipeline,
+                date,
+                knowledge,
+                plan,
+            } => commands::explain(&pipeline, &date, knowledge.as_deref(), plan, false).await,
+            Command::Generate(args) => commands::generate(args),
+            Command::Demo {
+                dir,
+                customers,
+                days,
+            } => commands::demo(&dir, customers, days).await,
+            Command::Schema => {
+                print!("{}", daymark_spec::json_schema());
+                Ok(exit::OK)
+            }
+        }
+    });
+    match result {
+        Ok(code) => ExitCode::from(code),
+        Err(e) => {
+            eprintln!("error: {e:#}");
+            ExitCode::from(exit::FAILED)
+        }
+    }
+}

@@ -1,0 +1,15 @@
+//! The daymark engine: DataFusion plans over a pipeline's sources.
+//!
+//! - [`sources`]: resolve, list and read the footers of each source; register them as tables.
+//! - [`check`]: check a pipeline against the sources' real schemas (columns, types, filters).
+//! - [`time`]: cutoffs and window bounds in the pipeline time zone.
+//! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
+
+pub mod check;
+pub mod sources;
+pub mod sql;
+pub mod time;
+
+pub use check::{check_against_schemas, check_expr, FeatureTypes};
+pub use sources::{inspect_sources, register_sources, schemas_of, SourceReport};
+pub use sql::{snapshot_query, SnapshotQuery};

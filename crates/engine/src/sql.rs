@@ -1,0 +1,407 @@
+//! The point-in-time snapshot of one day as one plain SQL query (the naive path).
+//!
+//! The query filters raw events for that one cutoff: no tiles, no reuse. It is what
+//! `daymark explain` shows, and it is deliberately simple so that it can serve as the
+//! in-project oracle for the tiled engine. It uses only DataFusion built-in functions.
+
+use crate::time;
+use chrono::{DateTime, Duration, NaiveDate, Utc};
+use daymark_spec::{
+    Aggregation, DerivedOp, Feature, FeatureDef, FillValue, Knowledge, Pipeline, Population, Window,
+};
+use std::collections::{BTreeMap, HashSet};
+
+/// Quotes an identifier for SQL.
+pub fn ident(name: &str) -> String {
+    format!("\"{}\"", name.replace('"', "\"\""))
+}
+
+/// Quotes a string literal for SQL.
+pub fn literal(text: &str) -> String {
+    format!("'{}'", text.replace('\'', "''"))
+}
+
+/// A UTC instant as a SQL timestamp literal with the UTC zone.
+pub fn ts_literal(t: DateTime<Utc>) -> String {
+    format!(
+        "arrow_cast({}, 'Timestamp(Microsecond, Some(\"UTC\"))')",
+        literal(&t.format("%Y-%m-%dT%H:%M:%S%.6fZ").to_string())
+    )
+}
+
+fn fill_sql(fill: &FillValue) -> String {
+    match fill {
+        FillValue::Null => "NULL".into(),
+        FillValue::Bool(b) => b.to_string(),
+        FillValue::Int(i) => i.to_string(),
+        FillValue::Float(f) if f.is_finite() => format!("CAST({f:?} AS DOUBLE)"),
+        FillValue::Float(f) if f.is_nan() => "CAST('NaN' AS DOUBLE)".into(),
+        FillValue::Float(f) => format!(
+            "CAST('{}Infinity' AS DOUBLE)",
+            if *f < 0.0 { "-" } else { "" }
+        ),
+        FillValue::Text(t) => literal(t),
+    }
+}
+
+/// What the query for one day reads from each source.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SourceRead {
+    /// First day partition read (`None`: from the beginning).
+    pub first_day: Option<NaiveDate>,
+    /// Last day partition read.
+    pub last_day: NaiveDate,
+    /// Knowledge mode used.
+    pub knowledge: Knowledge,
+}
+
+/// The plan of one snapshot: cutoff, reads and SQL.
+#[derive(Debug, Clone)]
+pub struct SnapshotQuery {
+    /// The snapshot day.
+    pub day: NaiveDate,
+    /// The cutoff instant.
+    pub cutoff: DateTime<Utc>,
+    /// What is read from each source.
+    pub reads: BTreeMap<String, SourceRead>,
+    /// The SQL, over tables named after the sources (with the day partition column).
+    pub sql: String,
+}
+
+/// Overrides of the knowledge mode: `None` keeps each source's own.
+pub type KnowledgeOverride = Option<Knowledge>;
+
+fn local_day_sql(pipeline: &Pipeline, ts_sql: &str) -> String {
+    // Wall-clock date in the pipeline time zone.
+    format!(
+        "CAST(to_local_time(arrow_cast({ts_sql}, 'Timestamp(Microsecond, Some(\"{}\"))')) AS DATE)",
+        pipeline.timezone.name()
+    )
+}
+
+/// Builds the snapshot query for `day`.
+pub fn snapshot_query(
+    pipeline: &Pipeline,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+) -> SnapshotQuery {
+    let tz = pipeline.timezone;
+    let cutoff = time::cutoff(tz, pipeline.cutoff_time, day);
+    let start_of = |w: Window| {
+        w.days()
+            .map(|d| time::window_start(tz, pipeline.cutoff_time, day, d))
+    };
+    let key = ident(&pipeline.file.key);
+
+    // Which windows each source needs.
+    let mut needs: BTreeMap<String, Option<DateTime<Utc>>> = BTreeMap::new();
+    let mut need = |source: &str, start: Option<DateTime<Utc>>| {
+        let e = needs.entry(source.to_string()).or_insert(start);
+        *e = match (*e, start) {
+            (Some(a), Some(b)) => Some(a.min(b)),
+            _ => None,
+        };
+    };
+    match &pipeline.population {
+        Population::State(s) => need(&s.source, None),
+        Population::RecentActivity(a) => need(&a.source, start_of(a.within)),
+    }
+    for f in &pipeline.features {
+        if let FeatureDef::Aggregate {
+            source,
+            agg,
+            window,
+            ..
+        } = &f.def
+        {
+            let w = if agg.is_unbounded() {
+                Window::All
+            } else {
+                *window
+            };
+            need(source, start_of(w));
+        }
+    }
+
+    let mut ctes: Vec<String> = Vec::new();
+    let mut reads = BTreeMap::new();
+    for (name, start) in &needs {
+        let Some(src) = pipeline.sources.get(name) else {
+            continue;
+        };
+        let knowledge = mode.unwrap_or(src.knowledge);
+        let knowledge = if src.spec.arrival_time.is_none() {
+            Knowledge::EventTime
+        } else {
+            knowledge
+        };
+        // Rows are filed by event day; one day of slack each side covers any time zone.
+        let first_day = start.map(|s| s.date_naive() - Duration::days(1));
+        let last_day = cutoff.date_naive() + Duration::days(1);
+        reads.insert(
+            name.clone(),
+            SourceRead {
+                first_day,
+                last_day,
+                knowledge,
+            },
+        );
+        let dt = ident(&src.spec.day_partition);
+        let ev = ident(&src.spec.event_time);
+        let mut conds = vec![format!("{dt} <= {}", literal(&last_day.to_string()))];
+        if let Some(d) = first_day {
+            conds.push(format!("{dt} >= {}", literal(&d.to_string())));
+        }
+        conds.push(format!("{ev} < {}", ts_literal(cutoff)));
+        if let Some(s) = start {
+            conds.push(format!("{ev} >= {}", ts_literal(*s)));
+        }
+        if let (Knowledge::AsKnown, Some(a)) = (knowledge, &src.spec.arrival_time) {
+            conds.push(format!("{} < {}", ident(a), ts_literal(cutoff)));
+        }
+        conds.push(format!("{} IS NOT NULL", ident(&src.key)));
+        let base = format!(
+            "SELECT *, {} AS __key FROM {} WHERE {}",
+            ident(&src.key),
+            ident(name),
+            conds.join(" AND ")
+        );
+        let body = if src.spec.dedupe_on.is_empty() {
+            base
+        } else {
+            let order = src
+                .spec
+                .arrival_time
+                .as_ref()
+                .map(|a| ident(a))
+                .unwrap_or_else(|| ev.clone());
+            let part: Vec<String> = src.spec.dedupe_on.iter().map(|c| ident(c)).collect();
+            format!(
+                "SELECT * FROM (SELECT *, row_number() OVER (PARTITION BY {} ORDER BY {order}) AS __copy FROM ({base})) WHERE __copy = 1",
+                part.join(", ")
+            )
+        };
+        ctes.push(format!("{} AS ({body})", ident(&format!("{name}__rows"))));
+    }
+
+    // Population.
+    let pop = match &pipeline.population {
+        Population::State(s) => {
+            let src = &pipeline.sources[&s.source];
+            let mut order = vec![format!("{} DESC", ident(&src.spec.event_time))];
+            if let Some(a) = &src.spec.arrival_time {
+                order.push(format!("{} DESC", ident(a)));
+            }
+            let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
+            format!(
+                "SELECT __key FROM (SELECT __key, {} AS __state, row_number() OVER (PARTITION BY __key ORDER BY {}) AS __rank FROM {}) WHERE __rank = 1 AND __state IN ({})",
+                ident(&s.column),
+                order.join(", "),
+                ident(&format!("{}__rows", s.source)),
+                values.join(", ")
+            )
+        }
+        Population::RecentActivity(a) => {
+            let src = &pipeline.sources[&a.source];
+            let mut conds = Vec::new();
+            if let Some(s) = start_of(a.within) {
+                conds.push(format!(
+                    "{} >= {}",
+                    ident(&src.spec.event_time),
+                    ts_literal(s)
+                ));
+            }
+            if let Some(f) = &a.filter {
+                conds.push(format!("({f})"));
+            }
+            let wh = if conds.is_empty() {
+                String::new()
+            } else {
+                format!(" WHERE {}", conds.join(" AND "))
+            };
+            format!(
+                "SELECT DISTINCT __key FROM {}{wh}",
+                ident(&format!("{}__rows", a.source))
+            )
+        }
+    };
+    ctes.push(format!("__population AS ({pop})"));
+
+    // One aggregate per source feature.
+    let d_days = (day - NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch")).num_days();
+    let mut joins = Vec::new();
+    let mut layer0 = vec![
+        format!("p.__key AS {key}"),
+        format!(
+            "CAST({} AS DATE) AS snapshot_date",
+            literal(&day.to_string())
+        ),
+    ];
+    for (i, f) in pipeline.features.iter().enumerate() {
+        let FeatureDef::Aggregate {
+            source,
+            agg,
+            expr,
+            filter,
+            window,
+        } = &f.def
+        else {
+            continue;
+        };
+        let src = &pipeline.sources[source];
+        let ev = ident(&src.spec.event_time);
+        let e = expr
+            .as_deref()
+            .map(|x| format!("({x})"))
+            .unwrap_or_default();
+        let mut tiebreak = vec![ev.clone()];
+        if let Some(a) = &src.spec.arrival_time {
+            tiebreak.push(ident(a));
+        }
+        let value = match agg {
+            Aggregation::Count if e.is_empty() => "COUNT(*)".to_string(),
+            Aggregation::Count => format!("COUNT({e})"),
+            Aggregation::Sum => format!("SUM({e})"),
+            Aggregation::Mean => format!("AVG(CAST({e} AS DOUBLE))"),
+            Aggregation::Min => format!("MIN({e})"),
+            Aggregation::Max => format!("MAX({e})"),
+            Aggregation::CountDistinct => format!("COUNT(DISTINCT {e})"),
+            Aggregation::ActiveDays => format!("COUNT(DISTINCT {})", local_day_sql(pipeline, &ev)),
+            Aggregation::First => format!("first_value({e} ORDER BY {})", tiebreak.join(", ")),
+            Aggregation::Last => format!("last_value({e} ORDER BY {})", tiebreak.join(", ")),
+            Aggregation::DaysSinceFirst => format!(
+                "{d_days} - CAST({} AS INT)",
+                local_day_sql(pipeline, &format!("MIN({ev})"))
+            ),
+            Aggregation::DaysSinceLast => format!(
+                "{d_days} - CAST({} AS INT)",
+                local_day_sql(pipeline, &format!("MAX({ev})"))
+            ),
+        };
+        let mut conds = Vec::new();
+        if let Some(s) = (!agg.is_unbounded()).then(|| start_of(*window)).flatten() {
+            conds.push(format!("{ev} >= {}", ts_literal(s)));
+        }
+        if let Some(fl) = filter {
+            conds.push(format!("({fl})"));
+        }
+        let wh = if conds.is_empty() {
+            String::new()
+        } else {
+            format!(" WHERE {}", conds.join(" AND "))
+        };
+        let cte = format!("__f{i}");
+        ctes.push(format!(
+            "{cte} AS (SELECT __key, {value} AS __v FROM {}{wh} GROUP BY __key)",
+            ident(&format!("{source}__rows"))
+        ));
+        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
+        let filled = match (&f.fill, agg.empty_is_zero()) {
+            (Some(fill), _) => format!("COALESCE({cte}.__v, {})", fill_sql(fill)),
+            (None, true) => format!("COALESCE({cte}.__v, 0)"),
+            (None, false) => format!("{cte}.__v"),
+        };
+        layer0.push(format!(
+            "{} AS {}",
+            transform_sql(f, &filled),
+            ident(&f.name)
+        ));
+    }
+
+    // Derived features in layers: each layer adds those whose operands exist.
+    let mut available: HashSet<&str> = pipeline
+        .features
+        .iter()
+        .filter(|f| matches!(f.def, FeatureDef::Aggregate { .. }))
+        .map(|f| f.name.as_str())
+        .collect();
+    let mut sql = format!(
+        "SELECT {} FROM __population p {}",
+        layer0.join(", "),
+        joins.join(" ")
+    );
+    let mut remaining: Vec<&Feature> = pipeline
+        .features
+        .iter()
+        .filter(|f| matches!(f.def, FeatureDef::Derived { .. }))
+        .collect();
+    let mut layer = 0;
+    while !remaining.is_empty() && layer < 64 {
+        layer += 1;
+        let (ready, rest): (Vec<&Feature>, Vec<&Feature>) =
+            remaining.into_iter().partition(|f| match &f.def {
+                FeatureDef::Derived { left, right, .. } => {
+                    available.contains(left.as_str()) && available.contains(right.as_str())
+                }
+                _ => false,
+            });
+        if ready.is_empty() {
+            break;
+        }
+        let mut cols = vec!["*".to_string()];
+        for f in &ready {
+            let FeatureDef::Derived { op, left, right } = &f.def else {
+                continue;
+            };
+            let (l, r) = (ident(left), ident(right));
+            let fill = f
+                .fill
+                .as_ref()
+                .map(fill_sql)
+                .unwrap_or_else(|| "NULL".into());
+            let v = match op {
+                DerivedOp::Ratio => format!("CASE WHEN {l} IS NULL OR {r} IS NULL OR {r} = 0 THEN {fill} ELSE CAST({l} AS DOUBLE) / CAST({r} AS DOUBLE) END"),
+                DerivedOp::Difference if f.fill.is_some() => format!("COALESCE({l} - {r}, {fill})"),
+                DerivedOp::Difference => format!("{l} - {r}"),
+            };
+            cols.push(format!("{} AS {}", transform_sql(f, &v), ident(&f.name)));
+        }
+        sql = format!("SELECT {} FROM ({sql})", cols.join(", "));
+        for f in &ready {
+            available.insert(f.name.as_str());
+        }
+        remaining = rest;
+    }
+    // Final projection in declared order.
+    let mut out = vec![key.clone(), "snapshot_date".to_string()];
+    out.extend(pipeline.features.iter().map(|f| ident(&f.name)));
+    let sql = format!(
+        "WITH {}\nSELECT {} FROM ({sql}) ORDER BY {key}",
+        ctes.join(",\n"),
+        out.join(", ")
+    );
+    SnapshotQuery {
+        day,
+        cutoff,
+        reads,
+        sql,
+    }
+}
+
+/// Applies clip, log1p and bucket (in that order) to the SQL value `v`.
+fn transform_sql(f: &Feature, v: &str) -> String {
+    let Some(t) = &f.transform else {
+        return v.to_string();
+    };
+    let mut x = v.to_string();
+    if let Some(c) = &t.clip {
+        if c.len() == 2 {
+            x = format!(
+                "LEAST(GREATEST(CAST({x} AS DOUBLE), {:?}), {:?})",
+                c[0], c[1]
+            );
+        }
+    }
+    if t.log1p {
+        x = format!("ln(1.0 + CAST({x} AS DOUBLE))");
+    }
+    if let Some(edges) = &t.bucket {
+        let mut case = format!("CASE WHEN ({x}) IS NULL THEN NULL");
+        for (i, e) in edges.iter().enumerate().rev() {
+            case.push_str(&format!(" WHEN ({x}) >= {e:?} THEN {}", i + 1));
+        }
+        case.push_str(" ELSE 0 END");
+        x = case;
+    }
+    x
+}
