@@ -29,6 +29,24 @@ const UNSTABLE_FUNCTIONS: &[&str] = &[
     "today",
 ];
 
+const SUBQUERY: &str =
+    "subqueries are not allowed: the expression may read only this source's own columns";
+
+/// Whether the SQL text contains a SELECT keyword (a subquery), by DataFusion's tokenizer.
+fn has_select(sql: &str) -> bool {
+    use datafusion::sql::sqlparser::dialect::GenericDialect;
+    use datafusion::sql::sqlparser::keywords::Keyword;
+    use datafusion::sql::sqlparser::tokenizer::{Token, Tokenizer};
+    Tokenizer::new(&GenericDialect {}, sql)
+        .tokenize()
+        .map(|tokens| {
+            tokens
+                .iter()
+                .any(|t| matches!(t, Token::Word(w) if w.keyword == Keyword::SELECT))
+        })
+        .unwrap_or(false)
+}
+
 /// Output types of every feature, by name, once the schemas are known.
 pub type FeatureTypes = BTreeMap<String, DataType>;
 
@@ -43,6 +61,9 @@ pub fn check_expr(
     schema: &SchemaRef,
 ) -> Result<(Expr, DataType), String> {
     let df_schema = DFSchema::try_from(schema.as_ref().clone()).map_err(|e| e.to_string())?;
+    if has_select(sql) {
+        return Err(SUBQUERY.to_string());
+    }
     let expr = ctx
         .parse_sql_expr(sql, &df_schema)
         .map_err(|e| explain_error(&e.to_string(), source, schema))?;
@@ -50,7 +71,7 @@ pub fn check_expr(
     let _ = expr.apply(|e| {
         let msg = match e {
             Expr::ScalarSubquery(_) | Expr::Exists(_) | Expr::InSubquery(_) | Expr::SetComparison(_) => {
-                Some("subqueries are not allowed: the expression may read only this source's own columns".to_string())
+                Some(SUBQUERY.to_string())
             }
             Expr::AggregateFunction(f) => Some(format!(
                 "`{}` is an aggregate: an expression here is computed per event; choose the aggregation with `agg`",

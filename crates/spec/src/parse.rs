@@ -18,7 +18,11 @@ pub fn parse_yaml(text: &str) -> Result<PipelineFile, Diagnostic> {
             ),
         ));
     }
-    if text.trim().is_empty() {
+    let nothing = matches!(
+        serde_yaml::from_str::<serde_yaml::Value>(text),
+        Ok(serde_yaml::Value::Null)
+    );
+    if text.trim().is_empty() || nothing {
         return Err(Diagnostic::at(
             "",
             "the file is empty: a pipeline file needs at least `daymark`, `name`, `key`, `sources`, `population` and `features`",
