@@ -176,3 +176,15 @@ fn window_lists_expand_with_predictable_names() {
     let names: Vec<&str> = p.features.iter().map(|f| f.name.as_str()).collect();
     assert_eq!(names, ["minutes_7d", "minutes_28d", "trend"]);
 }
+
+#[test]
+fn the_readme_example_is_a_valid_pipeline() {
+    let readme =
+        std::fs::read_to_string(PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../../README.md"))
+            .unwrap();
+    let start = readme.find("```yaml\n").expect("a yaml block") + "```yaml\n".len();
+    let end = start + readme[start..].find("```").unwrap();
+    let p = load(&readme[start..end]);
+    assert!(p.feature("minutes_watched_91d").is_some());
+    assert!(p.label.is_some());
+}

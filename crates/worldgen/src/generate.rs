@@ -630,39 +630,41 @@ fn run_day(ctx: &Ctx, day: i32) -> Result<(), GenerateError> {
         }
         for (key, group) in groups {
             let (source, e, a) = key;
-            if !writers.contains_key(&key) {
-                let date = |d: i64| {
-                    NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch") + Duration::days(d)
-                };
-                let local = ctx.cfg.start + Duration::days(day as i64);
-                let k = (local - date(e)).num_days() + 1;
-                let dir = ctx
-                    .cfg
-                    .out
-                    .join(SOURCES[source])
-                    .join(format!("dt={}", date(e)));
-                std::fs::create_dir_all(&dir).map_err(|err| GenerateError::Io {
-                    path: dir.clone(),
-                    source: err,
-                })?;
-                let path = dir.join(format!("arrived-{}-{k}.parquet", date(a)));
-                let file = File::create(&path).map_err(|err| GenerateError::Io {
-                    path: path.clone(),
-                    source: err,
-                })?;
-                let w = ArrowWriter::try_new(
-                    file,
-                    ctx.schemas[source].clone(),
-                    Some(ctx.props.clone()),
-                )
-                .map_err(|err| GenerateError::Parquet {
-                    path: path.clone(),
-                    source: err,
-                })?;
-                writers.insert(key, (path, w));
-                counts[source].files += 1;
-            }
-            let (path, w) = writers.get_mut(&key).expect("just inserted");
+            let (path, w) = match writers.entry(key) {
+                std::collections::btree_map::Entry::Occupied(o) => o.into_mut(),
+                std::collections::btree_map::Entry::Vacant(slot) => {
+                    let date = |d: i64| {
+                        NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch") + Duration::days(d)
+                    };
+                    let local = ctx.cfg.start + Duration::days(day as i64);
+                    let k = (local - date(e)).num_days() + 1;
+                    let dir = ctx
+                        .cfg
+                        .out
+                        .join(SOURCES[source])
+                        .join(format!("dt={}", date(e)));
+                    std::fs::create_dir_all(&dir).map_err(|err| GenerateError::Io {
+                        path: dir.clone(),
+                        source: err,
+                    })?;
+                    let path = dir.join(format!("arrived-{}-{k}.parquet", date(a)));
+                    let file = File::create(&path).map_err(|err| GenerateError::Io {
+                        path: path.clone(),
+                        source: err,
+                    })?;
+                    let w = ArrowWriter::try_new(
+                        file,
+                        ctx.schemas[source].clone(),
+                        Some(ctx.props.clone()),
+                    )
+                    .map_err(|err| GenerateError::Parquet {
+                        path: path.clone(),
+                        source: err,
+                    })?;
+                    counts[source].files += 1;
+                    slot.insert((path, w))
+                }
+            };
             let batch = to_batch(ctx, source, &group);
             w.write(&batch).map_err(|err| GenerateError::Parquet {
                 path: path.clone(),

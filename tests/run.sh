@@ -1,0 +1,14 @@
+#!/usr/bin/env bash
+# The project's test command (the README gives it; CI runs it as is).
+# 1. Rust tests of every crate. 2. Reference checks against tools outside the project
+# (DuckDB, scikit-learn), which it installs from PyPI first.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ignore -r tests/requirements.txt
+
+cargo test --workspace
+
+cargo build -p daymark-cli
+export DAYMARK_BIN="${CARGO_TARGET_DIR:-$PWD/target}/debug/daymark"
+python3 -m pytest -q tests/reference
