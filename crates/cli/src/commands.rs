@@ -17,6 +17,178 @@ use std::path::{Path, PathBuf};
 /// The demo pipeline, shipped inside the binary so `daymark demo` works from any folder.
 const DEMO_PIPELINE: &str = include_str!("../../../pipelines/demo.yaml");
 
+/// Arguments of `daymark build`.
+#[derive(clap::Args)]
+pub struct BuildArgs {
+    /// The pipeline file.
+    pipeline: PathBuf,
+    /// Build this one day (YYYY-MM-DD).
+    #[arg(long, conflicts_with_all = ["from", "to"])]
+    date: Option<String>,
+    /// First day of a backfill (YYYY-MM-DD).
+    #[arg(long, requires = "to")]
+    from: Option<String>,
+    /// Last day of a backfill, inclusive (YYYY-MM-DD).
+    #[arg(long, requires = "from")]
+    to: Option<String>,
+    /// Use one knowledge mode for every source: `as-known` or `event-time`. Such builds go to
+    /// `snapshots-<mode>/` so they never replace the default ones.
+    #[arg(long)]
+    knowledge: Option<String>,
+    /// Output folder or URL (default: the pipeline's `output`, else `out` beside it).
+    #[arg(long)]
+    out: Option<String>,
+    /// Memory limit for the engine, e.g. `2GiB`; larger work spills to disk.
+    #[arg(long)]
+    memory_limit: Option<String>,
+    /// Build even when day partitions that a window needs are missing.
+    #[arg(long)]
+    allow_gaps: bool,
+}
+
+fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
+    match knowledge {
+        None => Ok(None),
+        Some("as-known") => Ok(Some(Knowledge::AsKnown)),
+        Some("event-time") => Ok(Some(Knowledge::EventTime)),
+        Some(other) => bail!("unknown knowledge mode `{other}`: use `as-known` or `event-time`"),
+    }
+}
+
+fn parse_day(text: &str) -> Result<NaiveDate> {
+    text.parse()
+        .with_context(|| format!("`{text}` is not a date (YYYY-MM-DD)"))
+}
+
+/// `daymark build`.
+pub async fn build(args: BuildArgs) -> Result<u8> {
+    let mode = parse_mode(args.knowledge.as_deref())?;
+    let days: Vec<NaiveDate> = match (&args.date, &args.from, &args.to) {
+        (Some(d), _, _) => vec![parse_day(d)?],
+        (None, Some(a), Some(b)) => {
+            let (a, b) = (parse_day(a)?, parse_day(b)?);
+            if b < a {
+                bail!("--to {b} is before --from {a}");
+            }
+            a.iter_days().take_while(|d| *d <= b).collect()
+        }
+        _ => bail!("give --date D, or --from A --to B"),
+    };
+    let memory_limit = match &args.memory_limit {
+        Some(text) => Some(daymark_engine::session::parse_size(text).map_err(anyhow::Error::msg)?),
+        None => None,
+    };
+    let pipeline = match load(&args.pipeline) {
+        Ok(p) => p,
+        Err(code) => return Ok(code),
+    };
+    let (reports, problems, types) = inspect(&pipeline, &args.pipeline).await;
+    if !problems.is_empty() {
+        eprintln!(
+            "{} problem{}:",
+            problems.len(),
+            if problems.len() == 1 { "" } else { "s" }
+        );
+        for d in &problems {
+            eprintln!("  {d}");
+        }
+        return Ok(exit::INVALID);
+    }
+    // Every partition a window needs must exist (or carry a completeness marker).
+    let mut missing: BTreeMap<String, Vec<NaiveDate>> = BTreeMap::new();
+    for day in &days {
+        for (source, read) in snapshot_query(&pipeline, *day, mode).reads {
+            // The partitions after the cutoff's own day may legitimately be empty so far.
+            let to = read.last_day - chrono::Duration::days(2);
+            let gaps = reports[&source].gaps(read.first_day, Some(to));
+            missing.entry(source.clone()).or_default().extend(gaps);
+        }
+    }
+    missing.retain(|_, v| !v.is_empty());
+    for v in missing.values_mut() {
+        v.sort();
+        v.dedup();
+    }
+    if !missing.is_empty() {
+        for (source, ds) in &missing {
+            let shown: Vec<String> = ds.iter().take(10).map(|d| d.to_string()).collect();
+            eprintln!(
+                "source {source}: {} day partition(s) that a window needs are missing: {}{}",
+                ds.len(),
+                shown.join(", "),
+                if ds.len() > 10 { ", ..." } else { "" }
+            );
+        }
+        if !args.allow_gaps {
+            eprintln!(
+                "nothing built: land the missing days, or pass --allow-gaps to build without them"
+            );
+            return Ok(exit::INVALID);
+        }
+        eprintln!("--allow-gaps: building without them");
+    }
+    let out_text = args
+        .out
+        .clone()
+        .or_else(|| pipeline.file.output.clone())
+        .unwrap_or_else(|| "out".to_string());
+    let base = if args.out.is_some() {
+        None
+    } else {
+        pipeline.base_dir.as_deref()
+    };
+    let out = daymark_store::resolve(&out_text, base)?;
+    let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
+        memory_limit,
+        target_partitions: None,
+    })?;
+    register_sources(&ctx, &pipeline, &reports).await?;
+    daymark_engine::build::write_dictionary(&pipeline, &types, &out, mode).await?;
+    let t0 = std::time::Instant::now();
+    let mut rows = 0u64;
+    let mut warnings = 0usize;
+    for (i, day) in days.iter().enumerate() {
+        match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode).await {
+            Ok(r) => {
+                rows += r.rows;
+                warnings += r.warnings.len();
+                println!(
+                    "[{}/{}] snapshot {}: {} rows, {} in {:.2} s",
+                    i + 1,
+                    days.len(),
+                    r.day,
+                    r.rows,
+                    human_bytes(r.bytes),
+                    r.seconds
+                );
+                for w in &r.warnings {
+                    println!("    warning: {w}");
+                }
+            }
+            Err(daymark_engine::build::BuildError::ChecksFailed { day, failures }) => {
+                eprintln!(
+                    "snapshot {day}: {} check(s) failed; nothing published for it:",
+                    failures.len()
+                );
+                for f in &failures {
+                    eprintln!("  {f}");
+                }
+                return Ok(exit::CHECK_FAILED);
+            }
+            Err(e) => return Err(e.into()),
+        }
+    }
+    println!(
+        "built {} snapshot(s), {rows} rows, in {:.1} s ({} warning(s)) into {}/{}",
+        days.len(),
+        t0.elapsed().as_secs_f64(),
+        warnings,
+        out.display().trim_end_matches('/'),
+        daymark_engine::build::snapshots_dir(mode)
+    );
+    Ok(exit::OK)
+}
+
 /// Arguments of `daymark generate`.
 #[derive(clap::Args)]
 pub struct GenerateArgs {
@@ -114,10 +286,10 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
                     name.clone(),
                     json!({
                         "location": r.location.as_ref().map(|l| l.display()),
-                        "partitions": r.listing.days.len(),
+                        "partitions": r.range().map(|(a, b)| (b - a).num_days() + 1 - r.gaps(None, None).len() as i64).unwrap_or(0),
                         "first_day": r.range().map(|x| x.0.to_string()),
                         "last_day": r.range().map(|x| x.1.to_string()),
-                        "missing_days": r.gaps().iter().map(|d| d.to_string()).collect::<Vec<_>>(),
+                        "missing_days": r.gaps(None, None).iter().map(|d| d.to_string()).collect::<Vec<_>>(),
                         "files": r.listing.files().count(),
                         "bytes": r.listing.bytes(),
                         "rows": r.rows,
@@ -183,7 +355,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
         );
         match r.range() {
             Some((a, b)) => {
-                let gaps = r.gaps();
+                let gaps = r.gaps(None, None);
                 let gap_text = if gaps.is_empty() {
                     "no missing days".to_string()
                 } else {
@@ -191,7 +363,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
                 };
                 println!(
                     "    {} day partitions {a} .. {b} ({gap_text}), {} files, {}, {} rows in footers",
-                    r.listing.days.len(),
+                    (a - b).num_days().abs() + 1 - gaps.len() as i64,
                     r.listing.files().count(),
                     human_bytes(r.listing.bytes()),
                     r.rows
@@ -313,12 +485,7 @@ pub async fn explain(
     let day: NaiveDate = date
         .parse()
         .with_context(|| format!("`{date}` is not a date (YYYY-MM-DD)"))?;
-    let mode = match knowledge {
-        None => None,
-        Some("as-known") => Some(Knowledge::AsKnown),
-        Some("event-time") => Some(Knowledge::EventTime),
-        Some(other) => bail!("unknown knowledge mode `{other}`: use `as-known` or `event-time`"),
-    };
+    let mode = parse_mode(knowledge)?;
     let pipeline = match load(path) {
         Ok(p) => p,
         Err(code) => return Ok(code),
@@ -447,11 +614,32 @@ pub async fn demo(dir: &Path, customers: u32, days: u32) -> Result<u8> {
     let last = start + chrono::Duration::days(ndays);
     println!();
     let code = explain(&pipeline_path, &last.to_string(), None, true, true).await?;
+    if code != exit::OK {
+        return Ok(code);
+    }
+    println!();
+    let first = last - chrono::Duration::days(2);
+    println!("building the last three snapshots ({first} .. {last})...");
+    let code = build(BuildArgs {
+        pipeline: pipeline_path.clone(),
+        date: None,
+        from: Some(first.to_string()),
+        to: Some(last.to_string()),
+        knowledge: None,
+        out: None,
+        memory_limit: None,
+        allow_gaps: false,
+    })
+    .await?;
     println!();
     println!("demo world: {}", world.display());
     println!("pipeline:   {}", pipeline_path.display());
     println!(
-        "next: `daymark explain {} --date {last} --plan` shows a day's plan again.",
+        "snapshots:  {}",
+        dir.join("out").join("snapshots").display()
+    );
+    println!(
+        "next: `daymark explain {} --date {last} --plan` shows how a day is computed.",
         pipeline_path.display()
     );
     Ok(code)

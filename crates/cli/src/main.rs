@@ -47,6 +47,11 @@ enum Command {
         #[arg(long)]
         plan: bool,
     },
+    /// Build daily snapshots for one day or a range of days (a backfill) and publish them.
+    #[command(
+        after_help = "Example:\n  daymark build pipelines/demo.yaml --date 2026-03-09\n  daymark build pipelines/demo.yaml --from 2026-02-01 --to 2026-04-30 --memory-limit 2GiB"
+    )]
+    Build(commands::BuildArgs),
     /// Generate the demo world's event logs (an invented streaming service).
     #[command(
         after_help = "Example:\n  daymark generate --out demo-data/world --customers 5000 --days 120 --start 2026-01-01 --seed 7"
@@ -80,6 +85,8 @@ pub mod exit {
     pub const INVALID: u8 = 2;
     /// Anything else went wrong (I/O, engine).
     pub const FAILED: u8 = 1;
+    /// A check configured to fail did fail; nothing was published for that day.
+    pub const CHECK_FAILED: u8 = 3;
 }
 
 fn main() -> ExitCode {
@@ -103,6 +110,7 @@ fn main() -> ExitCode {
                 knowledge,
                 plan,
             } => commands::explain(&pipeline, &date, knowledge.as_deref(), plan, false).await,
+            Command::Build(args) => commands::build(args).await,
             Command::Generate(args) => commands::generate(args),
             Command::Demo {
                 dir,

@@ -3,9 +3,13 @@
 //! - [`sources`]: resolve, list and read the footers of each source; register them as tables.
 //! - [`check`]: check a pipeline against the sources' real schemas (columns, types, filters).
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
+//! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
+//! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
+pub mod build;
 pub mod check;
+pub mod session;
 pub mod sources;
 pub mod sql;
 pub mod time;

@@ -32,20 +32,25 @@ pub struct SourceReport {
 impl SourceReport {
     /// First and last day partition.
     pub fn range(&self) -> Option<(NaiveDate, NaiveDate)> {
-        Some((
-            *self.listing.days.keys().next()?,
-            *self.listing.days.keys().next_back()?,
-        ))
+        let days = || self.listing.days.keys().chain(self.listing.markers.keys());
+        Some((*days().min()?, *days().max()?))
     }
 
-    /// Days missing between the first and last partition.
-    pub fn gaps(&self) -> Vec<NaiveDate> {
+    /// Whether day `d` has files or a marker (a quiet day with no rows is not missing).
+    pub fn has_day(&self, d: NaiveDate) -> bool {
+        self.listing.days.contains_key(&d) || self.listing.markers.contains_key(&d)
+    }
+
+    /// Days missing between `from` and `to` (inclusive; default: the first and last
+    /// partition found).
+    pub fn gaps(&self, from: Option<NaiveDate>, to: Option<NaiveDate>) -> Vec<NaiveDate> {
         let Some((a, b)) = self.range() else {
             return vec![];
         };
+        let (a, b) = (from.unwrap_or(a).max(a), to.unwrap_or(b));
         a.iter_days()
             .take_while(|d| *d <= b)
-            .filter(|d| !self.listing.days.contains_key(d))
+            .filter(|d| !self.has_day(*d))
             .collect()
     }
 }

@@ -71,12 +71,22 @@ pub struct SnapshotQuery {
 /// Overrides of the knowledge mode: `None` keeps each source's own.
 pub type KnowledgeOverride = Option<Knowledge>;
 
-fn local_day_sql(pipeline: &Pipeline, ts_sql: &str) -> String {
-    // Wall-clock date in the pipeline time zone.
-    format!(
-        "CAST(to_local_time(arrow_cast({ts_sql}, 'Timestamp(Microsecond, Some(\"{}\"))')) AS DATE)",
+/// The day an instant belongs to: days run from one cutoff to the next, so with the
+/// default 00:00 cutoff this is the calendar date in the pipeline time zone.
+fn day_of_sql(pipeline: &Pipeline, ts_sql: &str) -> String {
+    let local = format!(
+        "to_local_time(arrow_cast({ts_sql}, 'Timestamp(Microsecond, Some(\"{}\"))'))",
         pipeline.timezone.name()
-    )
+    );
+    let shift = pipeline
+        .cutoff_time
+        .signed_duration_since(chrono::NaiveTime::MIN)
+        .num_seconds();
+    if shift == 0 {
+        format!("CAST({local} AS DATE)")
+    } else {
+        format!("CAST({local} - INTERVAL '{shift} seconds' AS DATE)")
+    }
 }
 
 /// Builds the snapshot query for `day`.
@@ -237,6 +247,9 @@ pub fn snapshot_query(
             literal(&day.to_string())
         ),
     ];
+    // One aggregation per source, every feature a filtered aggregate of it, so each
+    // source's rows are read (and de-duplicated) once.
+    let mut per_source: BTreeMap<&str, Vec<String>> = BTreeMap::new();
     for (i, f) in pipeline.features.iter().enumerate() {
         let FeatureDef::Aggregate {
             source,
@@ -258,26 +271,9 @@ pub fn snapshot_query(
         if let Some(a) = &src.spec.arrival_time {
             tiebreak.push(ident(a));
         }
-        let value = match agg {
-            Aggregation::Count if e.is_empty() => "COUNT(*)".to_string(),
-            Aggregation::Count => format!("COUNT({e})"),
-            Aggregation::Sum => format!("SUM({e})"),
-            Aggregation::Mean => format!("AVG(CAST({e} AS DOUBLE))"),
-            Aggregation::Min => format!("MIN({e})"),
-            Aggregation::Max => format!("MAX({e})"),
-            Aggregation::CountDistinct => format!("COUNT(DISTINCT {e})"),
-            Aggregation::ActiveDays => format!("COUNT(DISTINCT {})", local_day_sql(pipeline, &ev)),
-            Aggregation::First => format!("first_value({e} ORDER BY {})", tiebreak.join(", ")),
-            Aggregation::Last => format!("last_value({e} ORDER BY {})", tiebreak.join(", ")),
-            Aggregation::DaysSinceFirst => format!(
-                "{d_days} - CAST({} AS INT)",
-                local_day_sql(pipeline, &format!("MIN({ev})"))
-            ),
-            Aggregation::DaysSinceLast => format!(
-                "{d_days} - CAST({} AS INT)",
-                local_day_sql(pipeline, &format!("MAX({ev})"))
-            ),
-        };
+        if !e.is_empty() {
+            tiebreak.push(e.clone());
+        }
         let mut conds = Vec::new();
         if let Some(s) = (!agg.is_unbounded()).then(|| start_of(*window)).flatten() {
             conds.push(format!("{ev} >= {}", ts_literal(s)));
@@ -285,27 +281,63 @@ pub fn snapshot_query(
         if let Some(fl) = filter {
             conds.push(format!("({fl})"));
         }
-        let wh = if conds.is_empty() {
+        let only = if conds.is_empty() {
             String::new()
         } else {
-            format!(" WHERE {}", conds.join(" AND "))
+            format!(" FILTER (WHERE {})", conds.join(" AND "))
         };
-        let cte = format!("__f{i}");
-        ctes.push(format!(
-            "{cte} AS (SELECT __key, {value} AS __v FROM {}{wh} GROUP BY __key)",
-            ident(&format!("{source}__rows"))
-        ));
-        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
+        let value = match agg {
+            Aggregation::Count if e.is_empty() => format!("COUNT(*){only}"),
+            Aggregation::Count => format!("COUNT({e}){only}"),
+            Aggregation::Sum => format!("SUM({e}){only}"),
+            Aggregation::Mean => format!("AVG(CAST({e} AS DOUBLE)){only}"),
+            Aggregation::Min => format!("MIN({e}){only}"),
+            Aggregation::Max => format!("MAX({e}){only}"),
+            Aggregation::CountDistinct => format!("COUNT(DISTINCT {e}){only}"),
+            Aggregation::ActiveDays => {
+                format!("COUNT(DISTINCT {}){only}", day_of_sql(pipeline, &ev))
+            }
+            Aggregation::First => {
+                format!("first_value({e} ORDER BY {}){only}", tiebreak.join(", "))
+            }
+            Aggregation::Last => {
+                format!("last_value({e} ORDER BY {}){only}", tiebreak.join(", "))
+            }
+            Aggregation::DaysSinceFirst => format!(
+                "{d_days} - CAST({} AS BIGINT)",
+                day_of_sql(pipeline, &format!("MIN({ev}){only}"))
+            ),
+            Aggregation::DaysSinceLast => format!(
+                "{d_days} - CAST({} AS BIGINT)",
+                day_of_sql(pipeline, &format!("MAX({ev}){only}"))
+            ),
+        };
+        let column = format!("__f{i}");
+        per_source
+            .entry(source.as_str())
+            .or_default()
+            .push(format!("{value} AS {column}"));
+        let cte = format!("{}__agg", source);
+        let v = format!("{}.{column}", ident(&cte));
         let filled = match (&f.fill, agg.empty_is_zero()) {
-            (Some(fill), _) => format!("COALESCE({cte}.__v, {})", fill_sql(fill)),
-            (None, true) => format!("COALESCE({cte}.__v, 0)"),
-            (None, false) => format!("{cte}.__v"),
+            (Some(fill), _) => format!("COALESCE({v}, {})", fill_sql(fill)),
+            (None, true) => format!("COALESCE({v}, 0)"),
+            (None, false) => v,
         };
         layer0.push(format!(
             "{} AS {}",
             transform_sql(f, &filled),
             ident(&f.name)
         ));
+    }
+    for (source, columns) in &per_source {
+        let cte = ident(&format!("{source}__agg"));
+        ctes.push(format!(
+            "{cte} AS (SELECT __key, {} FROM {} GROUP BY __key)",
+            columns.join(", "),
+            ident(&format!("{source}__rows"))
+        ));
+        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
     }
 
     // Derived features in layers: each layer adds those whose operands exist.

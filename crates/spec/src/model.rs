@@ -171,16 +171,17 @@ pub enum Aggregation {
     Max,
     /// Number of distinct values of `expr` (exact).
     CountDistinct,
-    /// Number of distinct calendar days (pipeline time zone) with at least one event.
+    /// Number of distinct days with at least one event. Days run from one cutoff to the
+    /// next in the pipeline time zone: calendar days with the default 00:00 cutoff.
     ActiveDays,
     /// Value of `expr` at the earliest event in the window.
     First,
     /// Value of `expr` at the latest event in the window: with `window: all`, the current
     /// value of a change log as of the cutoff.
     Last,
-    /// Calendar days from the first event ever (before the cutoff) to day D: tenure.
+    /// Days (cutoff to cutoff) from the first event ever (before the cutoff) to day D: tenure.
     DaysSinceFirst,
-    /// Calendar days from the latest event (before the cutoff) to day D: recency.
+    /// Days (cutoff to cutoff) from the latest event (before the cutoff) to day D: recency.
     DaysSinceLast,
 }
 

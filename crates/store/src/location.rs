@@ -109,7 +109,7 @@ fn local(original: &str, path: &Path) -> Result<Location, LocationError> {
             .join(path)
     };
     let abs = normalise(&abs);
-    let prefix = StorePath::from_filesystem_path(&abs).map_err(|e| LocationError::Invalid {
+    let prefix = StorePath::from_absolute_path(&abs).map_err(|e| LocationError::Invalid {
         location: original.to_string(),
         reason: e.to_string(),
     })?;

@@ -338,6 +338,7 @@ pub fn generate(cfg: &WorldConfig) -> Result<WorldSummary, GenerateError> {
     for (i, c) in counts.into_iter().enumerate() {
         summary.sources.insert(SOURCES[i].to_string(), c);
     }
+    write_markers(cfg)?;
     if cfg.dirty {
         // One file that is not Parquet at all, in the middle of the plays log.
         let day = cfg.start + Duration::days(days as i64 / 2);
@@ -375,6 +376,44 @@ pub fn generate(cfg: &WorldConfig) -> Result<WorldSummary, GenerateError> {
         source: e,
     })?;
     Ok(summary)
+}
+
+/// Name of the empty file that marks a day partition as loaded (its on-time rows written).
+pub const COMPLETE_MARKER: &str = "_complete";
+
+/// Marks every day partition of every source, from its first day to the world's last,
+/// as loaded, including days that had no rows (a quiet day is not a missing day).
+fn write_markers(cfg: &WorldConfig) -> Result<(), GenerateError> {
+    let last = cfg.start + Duration::days(cfg.days as i64 - 1);
+    for source in SOURCES {
+        let dir = cfg.out.join(source);
+        let first = std::fs::read_dir(&dir)
+            .map_err(|e| GenerateError::Io {
+                path: dir.clone(),
+                source: e,
+            })?
+            .flatten()
+            .filter_map(|e| {
+                let name = e.file_name().to_string_lossy().to_string();
+                NaiveDate::parse_from_str(name.strip_prefix("dt=")?, "%Y-%m-%d").ok()
+            })
+            .min()
+            .unwrap_or(cfg.start)
+            .min(cfg.start);
+        for day in first.iter_days().take_while(|d| *d <= last) {
+            let part = dir.join(format!("dt={day}"));
+            std::fs::create_dir_all(&part).map_err(|e| GenerateError::Io {
+                path: part.clone(),
+                source: e,
+            })?;
+            let marker = part.join(COMPLETE_MARKER);
+            std::fs::write(&marker, b"").map_err(|e| GenerateError::Io {
+                path: marker.clone(),
+                source: e,
+            })?;
+        }
+    }
+    Ok(())
 }
 
 /// UTC micros of `day` (relative to start) at local second-of-day `sec`.

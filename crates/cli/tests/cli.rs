@@ -1,0 +1,185 @@
+//! The `daymark` binary end to end: generate a small world, check and explain the demo
+//! pipeline on it, and refuse broken input with the documented exit codes.
+
+use std::path::Path;
+use std::process::Command;
+
+fn daymark() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_daymark"))
+}
+
+fn demo_pipeline_for(world: &Path) -> String {
+    let text = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../pipelines/demo.yaml"),
+    )
+    .unwrap();
+    text.replace("../demo-data/world/", &format!("{}/", world.display()))
+}
+
+#[test]
+fn generate_then_check_and_explain_the_demo_pipeline() {
+    let dir = tempfile::tempdir().unwrap();
+    let world = dir.path().join("world");
+    let out = daymark()
+        .args([
+            "generate",
+            "--out",
+            world.to_str().unwrap(),
+            "--customers",
+            "300",
+            "--days",
+            "40",
+            "--start",
+            "2026-02-20",
+            "--seed",
+            "9",
+        ])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let pipeline = dir.path().join("demo.yaml");
+    std::fs::write(&pipeline, demo_pipeline_for(&world)).unwrap();
+
+    let out = daymark()
+        .args(["check", pipeline.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(
+        stdout.contains("40 day partitions 2026-02-20 .. 2026-03-31 (no missing days)"),
+        "{stdout}"
+    );
+    assert!(stdout.contains("features (36):"), "{stdout}");
+    assert!(stdout.contains("ok: no problems found"));
+
+    // The JSON report agrees with the files on disk.
+    let out = daymark()
+        .args(["check", pipeline.to_str().unwrap(), "--json"])
+        .output()
+        .unwrap();
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let plays = &report["sources"]["plays"];
+    assert_eq!(plays["partitions"], 40);
+    let files_on_disk = walk(&world.join("plays")).len() as u64;
+    assert_eq!(plays["files"].as_u64().unwrap(), files_on_disk);
+    assert_eq!(report["features"].as_array().unwrap().len(), 36);
+
+    // explain plans the snapshot across the daylight-saving change (2026-03-08 in Chicago).
+    let out = daymark()
+        .args([
+            "explain",
+            pipeline.to_str().unwrap(),
+            "--date",
+            "2026-03-09",
+            "--plan",
+        ])
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(stdout.contains("cutoff 2026-03-09T05:00:00Z"), "{stdout}");
+    assert!(stdout.contains("DataFusion's optimised logical plan"));
+    // The 7-day window starts at local midnight seven days earlier, still in winter time.
+    assert!(stdout.contains("2026-03-02T06:00:00.000000Z"), "{stdout}");
+}
+
+fn walk(dir: &Path) -> Vec<std::path::PathBuf> {
+    let mut out = Vec::new();
+    for e in std::fs::read_dir(dir).unwrap() {
+        let p = e.unwrap().path();
+        if p.is_dir() {
+            out.extend(walk(&p));
+        } else if p.extension().is_some_and(|x| x == "parquet") {
+            out.push(p);
+        }
+    }
+    out
+}
+
+#[test]
+fn broken_input_gets_located_errors_and_exit_code_2() {
+    let dir = tempfile::tempdir().unwrap();
+    let file = dir.path().join("p.yaml");
+    std::fs::write(&file, "daymark: 1\nname: x\nkey: k\ntimzone: UTC\n").unwrap();
+    let out = daymark()
+        .args(["check", file.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains(&format!(
+            "{}:4:1: unknown key `timzone`: did you mean `timezone`?",
+            file.display()
+        )),
+        "{stderr}"
+    );
+
+    // Sources that do not exist are reported by name, with every other problem.
+    let world = dir.path().join("nowhere");
+    std::fs::write(&file, demo_pipeline_for(&world)).unwrap();
+    let out = daymark()
+        .args(["check", file.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.contains("3 problems"), "{stderr}");
+    assert!(
+        stderr.contains("sources.plays.location: no `dt=YYYY-MM-DD/` partition"),
+        "{stderr}"
+    );
+
+    let out = daymark()
+        .args(["check", "/no/such/file.yaml"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("cannot read the pipeline file"));
+}
+
+#[test]
+fn a_dirty_world_names_the_unreadable_file() {
+    let dir = tempfile::tempdir().unwrap();
+    let world = dir.path().join("world");
+    let out = daymark()
+        .args([
+            "generate",
+            "--out",
+            world.to_str().unwrap(),
+            "--customers",
+            "100",
+            "--days",
+            "10",
+            "--dirty",
+        ])
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let pipeline = dir.path().join("demo.yaml");
+    std::fs::write(&pipeline, demo_pipeline_for(&world)).unwrap();
+    let out = daymark()
+        .args(["check", pipeline.to_str().unwrap()])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("dt=2026-01-06/arrived-corrupt.parquet is not a readable Parquet file"),
+        "{stderr}"
+    );
+}

@@ -1,0 +1,369 @@
+//! Building and publishing snapshots.
+//!
+//! A snapshot is written as one Parquet file to a staging path in the output store and
+//! then renamed into `snapshots/dt=D/part-0.parquet`: a reader sees the old file, the new
+//! file or none, never part of one (a rename of one object is atomic on local disks and
+//! replaces the object whole on object stores). Expectations are checked on the batches as
+//! they are written; a failing check configured to fail leaves nothing published.
+
+use crate::check::FeatureTypes;
+use crate::sql::{snapshot_query, KnowledgeOverride};
+use arrow::array::{Array, AsArray, RecordBatch};
+use arrow::compute::cast;
+use arrow::datatypes::{DataType, Float64Type};
+use chrono::NaiveDate;
+use datafusion::prelude::SessionContext;
+use daymark_spec::{FeatureDef, Knowledge, OnFail, Pipeline};
+use daymark_store::object_store::buffered::BufWriter;
+use daymark_store::object_store::path::Path as StorePath;
+use daymark_store::object_store::{ObjectStoreExt, PutPayload};
+use daymark_store::Location;
+use futures::StreamExt;
+use parquet::arrow::AsyncArrowWriter;
+use parquet::basic::{Compression, ZstdLevel};
+use parquet::file::properties::WriterProperties;
+use serde_json::json;
+use std::collections::BTreeMap;
+use std::time::Instant;
+
+/// Errors while building.
+#[derive(Debug, thiserror::Error)]
+pub enum BuildError {
+    /// The query engine failed.
+    #[error("snapshot {day}: {source}")]
+    Engine {
+        /// The snapshot day.
+        day: NaiveDate,
+        /// The cause.
+        source: datafusion::error::DataFusionError,
+    },
+    /// Writing to the output store failed.
+    #[error("snapshot {day}: cannot write {path}: {reason}")]
+    Write {
+        /// The snapshot day.
+        day: NaiveDate,
+        /// The object.
+        path: String,
+        /// Why.
+        reason: String,
+    },
+    /// A check configured to fail did fail; nothing was published.
+    #[error("snapshot {day}: {} check(s) failed, nothing published:\n  {}", .failures.len(), .failures.join("\n  "))]
+    ChecksFailed {
+        /// The snapshot day.
+        day: NaiveDate,
+        /// One line per failed check.
+        failures: Vec<String>,
+    },
+}
+
+/// Where a build writes: `snapshots/` for each source's own knowledge mode, or
+/// `snapshots-as-known/` / `snapshots-event-time/` when one mode is forced.
+pub fn snapshots_dir(mode: KnowledgeOverride) -> &'static str {
+    match mode {
+        None => "snapshots",
+        Some(Knowledge::AsKnown) => "snapshots-as-known",
+        Some(Knowledge::EventTime) => "snapshots-event-time",
+    }
+}
+
+fn child(base: &StorePath, parts: &[&str]) -> StorePath {
+    let mut p = base.clone();
+    for part in parts {
+        p = p.clone().join(*part);
+    }
+    p
+}
+
+/// The published path of snapshot `day`.
+pub fn snapshot_path(out: &Location, mode: KnowledgeOverride, day: NaiveDate) -> StorePath {
+    child(
+        &out.prefix,
+        &[snapshots_dir(mode), &format!("dt={day}"), "part-0.parquet"],
+    )
+}
+
+/// What one snapshot build did.
+#[derive(Debug, Clone)]
+pub struct DayReport {
+    /// The snapshot day.
+    pub day: NaiveDate,
+    /// Rows written (one per population key).
+    pub rows: u64,
+    /// Bytes of the published file.
+    pub bytes: u64,
+    /// Seconds taken.
+    pub seconds: f64,
+    /// Checks that failed but were configured to warn.
+    pub warnings: Vec<String>,
+}
+
+/// Running tallies for one feature's expectations.
+#[derive(Default)]
+struct Tally {
+    nulls: u64,
+    below: u64,
+    above: u64,
+    not_allowed: u64,
+    first_not_allowed: Option<String>,
+}
+
+fn tally_batch(pipeline: &Pipeline, batch: &RecordBatch, tallies: &mut BTreeMap<String, Tally>) {
+    for f in &pipeline.features {
+        let Some(exp) = &f.expect else { continue };
+        let Some(col) = batch.column_by_name(&f.name) else {
+            continue;
+        };
+        let t = tallies.entry(f.name.clone()).or_default();
+        t.nulls += col.null_count() as u64;
+        if exp.min.is_some() || exp.max.is_some() {
+            if let Ok(values) = cast(col, &DataType::Float64) {
+                let values = values.as_primitive::<Float64Type>();
+                for v in values.iter().flatten() {
+                    if exp.min.is_some_and(|m| v < m) {
+                        t.below += 1;
+                    }
+                    if exp.max.is_some_and(|m| v > m) {
+                        t.above += 1;
+                    }
+                }
+            }
+        }
+        if let Some(allowed) = &exp.values {
+            if let Ok(values) = cast(col, &DataType::Utf8) {
+                for v in values.as_string::<i32>().iter().flatten() {
+                    if !allowed.iter().any(|a| a == v) {
+                        t.not_allowed += 1;
+                        t.first_not_allowed.get_or_insert_with(|| v.to_string());
+                    }
+                }
+            }
+        }
+    }
+}
+
+/// Turns tallies into (fail, warn) messages.
+fn judge(
+    pipeline: &Pipeline,
+    rows: u64,
+    tallies: &BTreeMap<String, Tally>,
+) -> (Vec<String>, Vec<String>) {
+    let (mut fail, mut warn) = (Vec::new(), Vec::new());
+    for f in &pipeline.features {
+        let (Some(exp), Some(t)) = (&f.expect, tallies.get(&f.name)) else {
+            continue;
+        };
+        let mut msgs = Vec::new();
+        if t.below > 0 {
+            msgs.push(format!(
+                "{}: {} value(s) below the expected minimum {}",
+                f.name,
+                t.below,
+                exp.min.unwrap_or_default()
+            ));
+        }
+        if t.above > 0 {
+            msgs.push(format!(
+                "{}: {} value(s) above the expected maximum {}",
+                f.name,
+                t.above,
+                exp.max.unwrap_or_default()
+            ));
+        }
+        if t.not_allowed > 0 {
+            msgs.push(format!(
+                "{}: {} value(s) not in the allowed values, first `{}`",
+                f.name,
+                t.not_allowed,
+                t.first_not_allowed.as_deref().unwrap_or("")
+            ));
+        }
+        if let Some(max) = exp.max_null_share {
+            let share = if rows == 0 {
+                0.0
+            } else {
+                t.nulls as f64 / rows as f64
+            };
+            if share > max {
+                msgs.push(format!(
+                    "{}: null share {share:.4} above the expected {max}",
+                    f.name
+                ));
+            }
+        }
+        match f.on_fail {
+            OnFail::Fail => fail.extend(msgs),
+            OnFail::Warn => warn.extend(msgs),
+        }
+    }
+    (fail, warn)
+}
+
+/// Writer settings for published Parquet.
+pub fn writer_properties() -> WriterProperties {
+    WriterProperties::builder()
+        .set_compression(Compression::ZSTD(
+            ZstdLevel::try_new(3).expect("valid zstd level"),
+        ))
+        .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
+        .build()
+}
+
+/// Builds snapshot `day` with the naive path (the day's SQL over raw events) and publishes
+/// it. The sources must already be registered in `ctx`.
+pub async fn build_day(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    out: &Location,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+) -> Result<DayReport, BuildError> {
+    let t0 = Instant::now();
+    let engine = |source| BuildError::Engine { day, source };
+    let q = snapshot_query(pipeline, day, mode);
+    let df = ctx.sql(&q.sql).await.map_err(engine)?;
+    let mut stream = df.execute_stream().await.map_err(engine)?;
+    let final_path = snapshot_path(out, mode, day);
+    let staging = child(
+        &out.prefix,
+        &[
+            "_staging",
+            snapshots_dir(mode),
+            &format!(
+                "dt={day}.{}.{}.parquet",
+                std::process::id(),
+                t0.elapsed().as_nanos() ^ nanos_now()
+            ),
+        ],
+    );
+    let write_err = |path: &StorePath, reason: String| BuildError::Write {
+        day,
+        path: path.to_string(),
+        reason,
+    };
+    let mut writer = AsyncArrowWriter::try_new(
+        BufWriter::new(out.store.clone(), staging.clone()),
+        stream.schema(),
+        Some(writer_properties()),
+    )
+    .map_err(|e| write_err(&staging, e.to_string()))?;
+    let mut rows = 0u64;
+    let mut tallies = BTreeMap::new();
+    let result: Result<(), BuildError> = async {
+        while let Some(batch) = stream.next().await {
+            let batch = batch.map_err(engine)?;
+            rows += batch.num_rows() as u64;
+            tally_batch(pipeline, &batch, &mut tallies);
+            writer
+                .write(&batch)
+                .await
+                .map_err(|e| write_err(&staging, e.to_string()))?;
+        }
+        writer
+            .close()
+            .await
+            .map_err(|e| write_err(&staging, e.to_string()))?;
+        Ok(())
+    }
+    .await;
+    if let Err(e) = result {
+        let _ = out.store.delete(&staging).await;
+        return Err(e);
+    }
+    let (fail, warnings) = judge(pipeline, rows, &tallies);
+    if !fail.is_empty() {
+        let _ = out.store.delete(&staging).await;
+        return Err(BuildError::ChecksFailed {
+            day,
+            failures: fail,
+        });
+    }
+    out.store
+        .rename(&staging, &final_path)
+        .await
+        .map_err(|e| write_err(&final_path, e.to_string()))?;
+    let bytes = out
+        .store
+        .head(&final_path)
+        .await
+        .map(|m| m.size)
+        .unwrap_or(0);
+    Ok(DayReport {
+        day,
+        rows,
+        bytes,
+        seconds: t0.elapsed().as_secs_f64(),
+        warnings,
+    })
+}
+
+fn nanos_now() -> u128 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_nanos())
+        .unwrap_or(0)
+}
+
+/// Writes the feature dictionary (`<snapshots dir>/_features.json`): one entry per output
+/// column with its meaning, type and hash.
+pub async fn write_dictionary(
+    pipeline: &Pipeline,
+    types: &FeatureTypes,
+    out: &Location,
+    mode: KnowledgeOverride,
+) -> Result<(), BuildError> {
+    let features: Vec<serde_json::Value> = pipeline
+        .features
+        .iter()
+        .map(|f| {
+            let mut v = json!({
+                "name": f.name,
+                "description": f.description,
+                "type": types.get(&f.name).map(|t| t.to_string()),
+                "fill": f.fill,
+                "transform": f.transform,
+                "hash": f.hash,
+            });
+            match &f.def {
+                FeatureDef::Aggregate {
+                    source,
+                    agg,
+                    expr,
+                    filter,
+                    window,
+                } => {
+                    v["source"] = json!(source);
+                    v["aggregation"] = json!(agg.as_str());
+                    v["expr"] = json!(expr);
+                    v["filter"] = json!(filter);
+                    v["window"] = json!(window.suffix());
+                }
+                FeatureDef::Derived { op, left, right } => {
+                    v["derived"] = json!({ op.as_str(): [left, right] });
+                }
+            }
+            v
+        })
+        .collect();
+    let doc = json!({
+        "pipeline": pipeline.file.name,
+        "pipeline_hash": pipeline.hash,
+        "population_hash": pipeline.population_hash,
+        "key": pipeline.file.key,
+        "timezone": pipeline.file.timezone,
+        "cutoff_time": pipeline.file.cutoff_time,
+        "knowledge": mode.map(|m| m.as_str()).unwrap_or("per source"),
+        "features": features,
+    });
+    let path = child(&out.prefix, &[snapshots_dir(mode), "_features.json"]);
+    let body = serde_json::to_vec_pretty(&doc).unwrap_or_default();
+    out.store
+        .put(&path, PutPayload::from(body))
+        .await
+        .map_err(|e| BuildError::Write {
+            day: NaiveDate::MIN,
+            path: path.to_string(),
+            reason: e.to_string(),
+        })?;
+    Ok(())
+}

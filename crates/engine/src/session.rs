@@ -1,0 +1,79 @@
+//! The DataFusion session daymark runs its plans in: bounded memory that spills to disk.
+
+use datafusion::error::Result;
+use datafusion::execution::disk_manager::DiskManagerBuilder;
+use datafusion::execution::runtime_env::RuntimeEnvBuilder;
+use datafusion::prelude::{SessionConfig, SessionContext};
+use std::sync::Arc;
+
+/// How much the engine may use.
+#[derive(Debug, Clone, Default)]
+pub struct EngineOptions {
+    /// Memory limit in bytes for query execution; sorts and aggregations spill to disk
+    /// beyond it. `None`: no limit.
+    pub memory_limit: Option<usize>,
+    /// Parallelism (default: the number of cores).
+    pub target_partitions: Option<usize>,
+}
+
+/// A session with the given limits. Spill files go to the system's temporary folder.
+pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
+    let mut config = SessionConfig::new();
+    if let Some(n) = opts.target_partitions {
+        config = config.with_target_partitions(n.max(1));
+    }
+    let mut runtime =
+        RuntimeEnvBuilder::new().with_disk_manager_builder(DiskManagerBuilder::default());
+    if let Some(limit) = opts.memory_limit {
+        runtime = runtime.with_memory_limit(limit, 1.0);
+    }
+    Ok(SessionContext::new_with_config_rt(
+        config,
+        Arc::new(runtime.build()?),
+    ))
+}
+
+/// Parses sizes such as `2GiB`, `512MiB`, `1.5GB`, `1000000`.
+pub fn parse_size(text: &str) -> std::result::Result<usize, String> {
+    let t = text.trim();
+    let split = t
+        .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .unwrap_or(t.len());
+    let (num, unit) = t.split_at(split);
+    let n: f64 = num
+        .parse()
+        .map_err(|_| format!("`{text}` is not a size such as `2GiB`"))?;
+    let mult: f64 = match unit.trim().to_ascii_lowercase().as_str() {
+        "" | "b" => 1.0,
+        "k" | "kb" => 1e3,
+        "kib" => 1024.0,
+        "m" | "mb" => 1e6,
+        "mib" => 1024.0 * 1024.0,
+        "g" | "gb" => 1e9,
+        "gib" => 1024.0 * 1024.0 * 1024.0,
+        _ => {
+            return Err(format!(
+                "`{text}` has an unknown unit: use B, KiB, MiB, GiB, KB, MB or GB"
+            ))
+        }
+    };
+    let bytes = n * mult;
+    if !(bytes.is_finite() && bytes >= 1.0) {
+        return Err(format!("`{text}` is not a positive size"));
+    }
+    Ok(bytes as usize)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::parse_size;
+
+    #[test]
+    fn sizes() {
+        assert_eq!(parse_size("2GiB"), Ok(2 << 30));
+        assert_eq!(parse_size("512 MiB"), Ok(512 << 20));
+        assert_eq!(parse_size("1.5GB"), Ok(1_500_000_000));
+        assert!(parse_size("lots").is_err());
+        assert!(parse_size("3 parsecs").is_err());
+    }
+}
