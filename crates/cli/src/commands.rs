@@ -44,6 +44,10 @@ pub struct BuildArgs {
     /// Build even when day partitions that a window needs are missing.
     #[arg(long)]
     allow_gaps: bool,
+    /// `tiled` (default): combine stored per-day tiles, reading each raw partition once;
+    /// `naive`: one query over the raw events of each day's windows (the reference path).
+    #[arg(long, default_value = "tiled", value_parser = ["tiled", "naive"])]
+    engine: String,
 }
 
 fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
@@ -145,10 +149,84 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     register_sources(&ctx, &pipeline, &reports).await?;
     daymark_engine::build::write_dictionary(&pipeline, &types, &out, mode).await?;
     let t0 = std::time::Instant::now();
+    let tiled = args.engine == "tiled";
+    let layouts = daymark_engine::tiles::layouts(&pipeline);
+    if tiled {
+        // Every raw partition any of the days needs, each built into tiles once.
+        let mut needed: BTreeMap<String, std::collections::BTreeSet<NaiveDate>> = BTreeMap::new();
+        for day in &days {
+            for (source, read) in snapshot_query(&pipeline, *day, mode).reads {
+                let r = &reports[&source];
+                let set = needed.entry(source).or_default();
+                let first = read.first_day.or(r.range().map(|x| x.0));
+                for d in r.listing.days.keys() {
+                    if first.is_none_or(|f| *d >= f) && *d <= read.last_day {
+                        set.insert(*d);
+                    }
+                }
+            }
+        }
+        let mut total = daymark_engine::tiles::TileStats::default();
+        for (source, layout) in &layouts {
+            let Some(set) = needed.get(source) else {
+                continue;
+            };
+            let stats = daymark_engine::tiles::ensure_tiles(
+                &ctx,
+                &pipeline,
+                &reports[source],
+                layout,
+                &out,
+                set,
+            )
+            .await?;
+            println!(
+                "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused",
+                stats.partitions_built,
+                stats.raw_files,
+                human_bytes(stats.raw_bytes),
+                stats.partitions_reused
+            );
+            total.partitions_built += stats.partitions_built;
+            total.partitions_reused += stats.partitions_reused;
+            total.raw_files += stats.raw_files;
+            total.raw_bytes += stats.raw_bytes;
+            if !set.is_empty() {
+                daymark_engine::tiles::register_tiles(
+                    &ctx,
+                    &out,
+                    &layout.dir(&out),
+                    &layout.table(),
+                )
+                .await?;
+                for (i, _, _) in &layout.distinct {
+                    daymark_engine::tiles::register_tiles(
+                        &ctx,
+                        &out,
+                        &layout.distinct_dir(&out, *i),
+                        &layout.distinct_table(*i),
+                    )
+                    .await?;
+                }
+            }
+        }
+        println!(
+            "read {} raw file(s), {} in all; {} tile partition(s) reused",
+            total.raw_files,
+            human_bytes(total.raw_bytes),
+            total.partitions_reused
+        );
+    }
     let mut rows = 0u64;
     let mut warnings = 0usize;
     for (i, day) in days.iter().enumerate() {
-        match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode).await {
+        let query = if tiled {
+            daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, *day, mode)
+        } else {
+            snapshot_query(&pipeline, *day, mode)
+        };
+        match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode, &query.sql).await
+        {
             Ok(r) => {
                 rows += r.rows;
                 warnings += r.warnings.len();
@@ -629,6 +707,7 @@ pub async fn demo(dir: &Path, customers: u32, days: u32) -> Result<u8> {
         out: None,
         memory_limit: None,
         allow_gaps: false,
+        engine: "tiled".into(),
     })
     .await?;
     println!();

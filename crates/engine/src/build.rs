@@ -7,7 +7,7 @@
 //! they are written; a failing check configured to fail leaves nothing published.
 
 use crate::check::FeatureTypes;
-use crate::sql::{snapshot_query, KnowledgeOverride};
+use crate::sql::KnowledgeOverride;
 use arrow::array::{Array, AsArray, RecordBatch};
 use arrow::compute::cast;
 use arrow::datatypes::{DataType, Float64Type};
@@ -67,7 +67,8 @@ pub fn snapshots_dir(mode: KnowledgeOverride) -> &'static str {
     }
 }
 
-fn child(base: &StorePath, parts: &[&str]) -> StorePath {
+/// `base/part1/part2/...`.
+pub fn child(base: &StorePath, parts: &[&str]) -> StorePath {
     let mut p = base.clone();
     for part in parts {
         p = p.clone().join(*part);
@@ -209,30 +210,30 @@ pub fn writer_properties() -> WriterProperties {
         .build()
 }
 
-/// Builds snapshot `day` with the naive path (the day's SQL over raw events) and publishes
-/// it. The sources must already be registered in `ctx`.
-pub async fn build_day(
+/// Runs `sql` and writes its result as one Parquet file at `final_path`: first to a
+/// staging path, then renamed into place. With `checks`, the pipeline's expectations are
+/// tallied on the way and a failing check set to `fail` publishes nothing.
+/// Returns (rows, bytes, warnings).
+pub async fn write_query(
     ctx: &SessionContext,
-    pipeline: &Pipeline,
+    sql: &str,
     out: &Location,
+    final_path: &StorePath,
     day: NaiveDate,
-    mode: KnowledgeOverride,
-) -> Result<DayReport, BuildError> {
-    let t0 = Instant::now();
+    checks: Option<&Pipeline>,
+) -> Result<(u64, u64, Vec<String>), BuildError> {
     let engine = |source| BuildError::Engine { day, source };
-    let q = snapshot_query(pipeline, day, mode);
-    let df = ctx.sql(&q.sql).await.map_err(engine)?;
+    let df = ctx.sql(sql).await.map_err(engine)?;
     let mut stream = df.execute_stream().await.map_err(engine)?;
-    let final_path = snapshot_path(out, mode, day);
     let staging = child(
         &out.prefix,
         &[
             "_staging",
-            snapshots_dir(mode),
             &format!(
-                "dt={day}.{}.{}.parquet",
+                "{}.{}.{}",
+                final_path.as_ref().replace('/', "_"),
                 std::process::id(),
-                t0.elapsed().as_nanos() ^ nanos_now()
+                nanos_now()
             ),
         ],
     );
@@ -253,7 +254,9 @@ pub async fn build_day(
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine)?;
             rows += batch.num_rows() as u64;
-            tally_batch(pipeline, &batch, &mut tallies);
+            if let Some(p) = checks {
+                tally_batch(p, &batch, &mut tallies);
+            }
             writer
                 .write(&batch)
                 .await
@@ -270,24 +273,45 @@ pub async fn build_day(
         let _ = out.store.delete(&staging).await;
         return Err(e);
     }
-    let (fail, warnings) = judge(pipeline, rows, &tallies);
-    if !fail.is_empty() {
-        let _ = out.store.delete(&staging).await;
-        return Err(BuildError::ChecksFailed {
-            day,
-            failures: fail,
-        });
-    }
+    let warnings = match checks {
+        Some(p) => {
+            let (fail, warnings) = judge(p, rows, &tallies);
+            if !fail.is_empty() {
+                let _ = out.store.delete(&staging).await;
+                return Err(BuildError::ChecksFailed {
+                    day,
+                    failures: fail,
+                });
+            }
+            warnings
+        }
+        None => Vec::new(),
+    };
     out.store
-        .rename(&staging, &final_path)
+        .rename(&staging, final_path)
         .await
-        .map_err(|e| write_err(&final_path, e.to_string()))?;
+        .map_err(|e| write_err(final_path, e.to_string()))?;
     let bytes = out
         .store
-        .head(&final_path)
+        .head(final_path)
         .await
         .map(|m| m.size)
         .unwrap_or(0);
+    Ok((rows, bytes, warnings))
+}
+
+/// Builds snapshot `day` from `sql` (naive or tiled) and publishes it.
+pub async fn build_day(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    out: &Location,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+    sql: &str,
+) -> Result<DayReport, BuildError> {
+    let t0 = Instant::now();
+    let path = snapshot_path(out, mode, day);
+    let (rows, bytes, warnings) = write_query(ctx, sql, out, &path, day, Some(pipeline)).await?;
     Ok(DayReport {
         day,
         rows,

@@ -5,6 +5,8 @@
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
+//! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
+//!   from them.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
 pub mod build;
@@ -12,6 +14,7 @@ pub mod check;
 pub mod session;
 pub mod sources;
 pub mod sql;
+pub mod tiles;
 pub mod time;
 
 pub use check::{check_against_schemas, check_expr, FeatureTypes};

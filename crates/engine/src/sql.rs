@@ -29,7 +29,7 @@ pub fn ts_literal(t: DateTime<Utc>) -> String {
     )
 }
 
-fn fill_sql(fill: &FillValue) -> String {
+pub(crate) fn fill_sql(fill: &FillValue) -> String {
     match fill {
         FillValue::Null => "NULL".into(),
         FillValue::Bool(b) => b.to_string(),
@@ -73,7 +73,7 @@ pub type KnowledgeOverride = Option<Knowledge>;
 
 /// The day an instant belongs to: days run from one cutoff to the next, so with the
 /// default 00:00 cutoff this is the calendar date in the pipeline time zone.
-fn day_of_sql(pipeline: &Pipeline, ts_sql: &str) -> String {
+pub(crate) fn day_of_sql(pipeline: &Pipeline, ts_sql: &str) -> String {
     let local = format!(
         "to_local_time(arrow_cast({ts_sql}, 'Timestamp(Microsecond, Some(\"{}\"))'))",
         pipeline.timezone.name()
@@ -202,6 +202,7 @@ pub fn snapshot_query(
             if let Some(a) = &src.spec.arrival_time {
                 order.push(format!("{} DESC", ident(a)));
             }
+            order.push(format!("{} DESC", ident(&s.column)));
             let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
             format!(
                 "SELECT __key FROM (SELECT __key, {} AS __state, row_number() OVER (PARTITION BY __key ORDER BY {}) AS __rank FROM {}) WHERE __rank = 1 AND __state IN ({})",
@@ -340,6 +341,25 @@ pub fn snapshot_query(
         joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
     }
 
+    let sql = finish(pipeline, &ctes, &layer0, &joins);
+    SnapshotQuery {
+        day,
+        cutoff,
+        reads,
+        sql,
+    }
+}
+
+/// Adds derived features (in layers, each using features already computed) and the final
+/// projection in declared order to the first layer `layer0` (key, date, source features)
+/// over `__population p` and its `joins`.
+pub(crate) fn finish(
+    pipeline: &Pipeline,
+    ctes: &[String],
+    layer0: &[String],
+    joins: &[String],
+) -> String {
+    let key = ident(&pipeline.file.key);
     // Derived features in layers: each layer adds those whose operands exist.
     let mut available: HashSet<&str> = pipeline
         .features
@@ -397,21 +417,15 @@ pub fn snapshot_query(
     // Final projection in declared order.
     let mut out = vec![key.clone(), "snapshot_date".to_string()];
     out.extend(pipeline.features.iter().map(|f| ident(&f.name)));
-    let sql = format!(
+    format!(
         "WITH {}\nSELECT {} FROM ({sql}) ORDER BY {key}",
         ctes.join(",\n"),
         out.join(", ")
-    );
-    SnapshotQuery {
-        day,
-        cutoff,
-        reads,
-        sql,
-    }
+    )
 }
 
 /// Applies clip, log1p and bucket (in that order) to the SQL value `v`.
-fn transform_sql(f: &Feature, v: &str) -> String {
+pub(crate) fn transform_sql(f: &Feature, v: &str) -> String {
     let Some(t) = &f.transform else {
         return v.to_string();
     };

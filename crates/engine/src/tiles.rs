@@ -1,0 +1,543 @@
+//! Tiles: per key, per day partial aggregates of a source, the reuse layer.
+//!
+//! One tile file is built per source day partition (`dt=E`) and holds, for every
+//! (key, event day t, arrival day a), the partial aggregates of every feature that reads
+//! the source. Days run from one cutoff to the next in the pipeline time zone, so a
+//! snapshot D with a W-day window needs exactly the tile rows with `D-W <= t <= D-1`, and in
+//! as-known mode also `a <= D-1`: a late row lands in the tile of its (event day, arrival
+//! day) and never forces a rescan of history. Features whose partials do not add up (exact
+//! distinct counts) get a tile of distinct (key, t, a, value) rows instead.
+//!
+//! A tile is rebuilt only when the files of its partition change (their names, sizes and
+//! modification times are kept beside it) or when the definitions it serves change (they
+//! are part of the tile folder's name).
+
+use crate::build::{child, write_query, BuildError};
+use crate::sources::SourceReport;
+use crate::sql::{day_of_sql, ident, literal};
+use chrono::NaiveDate;
+use datafusion::arrow::datatypes::DataType;
+use datafusion::datasource::file_format::parquet::ParquetFormat;
+use datafusion::datasource::listing::{
+    ListingOptions, ListingTable, ListingTableConfig, ListingTableUrl,
+};
+use datafusion::prelude::SessionContext;
+use daymark_spec::hash::hash_value;
+use daymark_spec::{Aggregation, FeatureDef, Pipeline, Population, Source};
+use daymark_store::object_store::path::Path as StorePath;
+use daymark_store::object_store::{ObjectStoreExt, PutPayload};
+use daymark_store::{DataFile, Location};
+use serde_json::json;
+use std::collections::{BTreeMap, BTreeSet};
+use std::sync::Arc;
+
+/// What the tile files of one source contain.
+#[derive(Debug, Clone)]
+pub struct TileLayout {
+    /// Source name.
+    pub source: String,
+    /// Short hash of everything the tiles depend on; names their folder.
+    pub hash: String,
+    /// SELECT items of the main tile (over de-duplicated rows with `__t`, `__a`).
+    pub columns: Vec<String>,
+    /// Distinct-value tiles: (feature index, value expression, filter).
+    pub distinct: Vec<(usize, String, Option<String>)>,
+}
+
+impl TileLayout {
+    /// Folder of the main tiles: `tiles/<source>/<hash>/`.
+    pub fn dir(&self, out: &Location) -> StorePath {
+        child(&out.prefix, &["tiles", &self.source, &self.hash])
+    }
+    /// Folder of one distinct-value tile.
+    pub fn distinct_dir(&self, out: &Location, feature: usize) -> StorePath {
+        child(
+            &out.prefix,
+            &["tiles", &self.source, &format!("{}-d{feature}", self.hash)],
+        )
+    }
+    /// Table name of the main tiles.
+    pub fn table(&self) -> String {
+        format!("{}__tiles", self.source)
+    }
+    /// Table name of a distinct-value tile.
+    pub fn distinct_table(&self, feature: usize) -> String {
+        format!("{}__d{feature}", self.source)
+    }
+}
+
+fn cond(filter: &Option<String>) -> String {
+    match filter {
+        Some(f) => format!(" FILTER (WHERE ({f}))"),
+        None => String::new(),
+    }
+}
+
+/// The tile layout of `source`, or `None` if no feature or population reads it.
+pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
+    let ev = ident(&source.spec.event_time);
+    let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
+    let mut columns = Vec::new();
+    let mut distinct = Vec::new();
+    match &pipeline.population {
+        Population::State(s) if s.source == source.name => {
+            let col = ident(&s.column);
+            let order = [Some(ev.clone()), arr.clone(), Some(col.clone())]
+                .into_iter()
+                .flatten()
+                .collect::<Vec<_>>()
+                .join(", ");
+            columns.push(format!("last_value({col} ORDER BY {order}) AS __ps"));
+            columns.push(format!("last_value({ev} ORDER BY {order}) AS __pt"));
+            if let Some(a) = &arr {
+                columns.push(format!("last_value({a} ORDER BY {order}) AS __pa"));
+            }
+        }
+        Population::RecentActivity(r) if r.source == source.name => {
+            columns.push(format!("COUNT(*){} AS __pc", cond(&r.filter)));
+        }
+        _ => {}
+    }
+    for (i, f) in pipeline.features.iter().enumerate() {
+        let FeatureDef::Aggregate {
+            source: s,
+            agg,
+            expr,
+            filter,
+            ..
+        } = &f.def
+        else {
+            continue;
+        };
+        if *s != source.name {
+            continue;
+        }
+        let only = cond(filter);
+        let e = expr
+            .as_deref()
+            .map(|x| format!("({x})"))
+            .unwrap_or_default();
+        match agg {
+            Aggregation::Count if !e.is_empty() => {
+                columns.push(format!("COUNT({e}){only} AS __c{i}"))
+            }
+            _ => columns.push(format!("COUNT(*){only} AS __c{i}")),
+        }
+        match agg {
+            Aggregation::Sum => columns.push(format!("SUM({e}){only} AS __s{i}")),
+            Aggregation::Mean => {
+                columns.push(format!("SUM(CAST({e} AS DOUBLE)){only} AS __s{i}"));
+                columns.push(format!("COUNT({e}){only} AS __n{i}"));
+            }
+            Aggregation::Min => columns.push(format!("MIN({e}){only} AS __m{i}")),
+            Aggregation::Max => columns.push(format!("MAX({e}){only} AS __m{i}")),
+            Aggregation::First | Aggregation::Last => {
+                let func = if *agg == Aggregation::First {
+                    "first_value"
+                } else {
+                    "last_value"
+                };
+                let order = [Some(ev.clone()), arr.clone(), Some(e.clone())]
+                    .into_iter()
+                    .flatten()
+                    .collect::<Vec<_>>()
+                    .join(", ");
+                columns.push(format!("{func}({e} ORDER BY {order}){only} AS __v{i}"));
+                columns.push(format!("{func}({ev} ORDER BY {order}){only} AS __vt{i}"));
+                if let Some(a) = &arr {
+                    columns.push(format!("{func}({a} ORDER BY {order}){only} AS __va{i}"));
+                }
+            }
+            Aggregation::CountDistinct => distinct.push((i, e.clone(), filter.clone())),
+            _ => {}
+        }
+    }
+    if columns.is_empty() && distinct.is_empty() {
+        return None;
+    }
+    let hash = hash_value(&json!({
+        "source": serde_json::to_value(&source.spec).unwrap_or_default(),
+        "key": source.key,
+        "timezone": pipeline.file.timezone,
+        "cutoff_time": pipeline.file.cutoff_time,
+        "columns": columns,
+        "distinct": distinct.iter().map(|(i, e, f)| json!([i, e, f])).collect::<Vec<_>>(),
+    }))[..16]
+        .to_string();
+    Some(TileLayout {
+        source: source.name.clone(),
+        hash,
+        columns,
+        distinct,
+    })
+}
+
+/// The de-duplicated rows of partition `day` of `source`, with `__key`, `__t`, `__a`.
+fn rows_sql(pipeline: &Pipeline, source: &Source, day: NaiveDate) -> String {
+    let ev = ident(&source.spec.event_time);
+    let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
+    let base = format!(
+        "SELECT *, {} AS __key FROM {} WHERE {} = {} AND {} IS NOT NULL",
+        ident(&source.key),
+        ident(&source.name),
+        ident(&source.spec.day_partition),
+        literal(&day.to_string()),
+        ident(&source.key)
+    );
+    let deduped = if source.spec.dedupe_on.is_empty() {
+        base
+    } else {
+        let part: Vec<String> = source.spec.dedupe_on.iter().map(|c| ident(c)).collect();
+        let order = arr.clone().unwrap_or_else(|| ev.clone());
+        format!(
+            "SELECT * FROM (SELECT *, row_number() OVER (PARTITION BY {} ORDER BY {order}) AS __copy FROM ({base})) WHERE __copy = 1",
+            part.join(", ")
+        )
+    };
+    let a = arr
+        .map(|a| day_of_sql(pipeline, &a))
+        .unwrap_or_else(|| day_of_sql(pipeline, &ev));
+    format!(
+        "SELECT *, {} AS __t, {a} AS __a FROM ({deduped})",
+        day_of_sql(pipeline, &ev)
+    )
+}
+
+/// The SQL of the main tile of partition `day`.
+pub fn tile_sql(
+    pipeline: &Pipeline,
+    source: &Source,
+    layout: &TileLayout,
+    day: NaiveDate,
+) -> String {
+    let mut cols = vec!["__key".to_string(), "__t".to_string(), "__a".to_string()];
+    cols.extend(layout.columns.iter().cloned());
+    format!(
+        "SELECT {} FROM ({}) GROUP BY __key, __t, __a",
+        cols.join(", "),
+        rows_sql(pipeline, source, day)
+    )
+}
+
+/// The SQL of a distinct-value tile of partition `day`.
+pub fn distinct_sql(
+    pipeline: &Pipeline,
+    source: &Source,
+    expr: &str,
+    filter: &Option<String>,
+    day: NaiveDate,
+) -> String {
+    let wh = filter
+        .as_ref()
+        .map(|f| format!(" AND ({f})"))
+        .unwrap_or_default();
+    format!(
+        "SELECT DISTINCT __key, __t, __a, {expr} AS __v FROM ({}) WHERE {expr} IS NOT NULL{wh}",
+        rows_sql(pipeline, source, day)
+    )
+}
+
+/// What building tiles cost.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct TileStats {
+    /// Raw partitions whose tiles were built (or rebuilt).
+    pub partitions_built: u64,
+    /// Partitions whose stored tiles were still current.
+    pub partitions_reused: u64,
+    /// Raw files read.
+    pub raw_files: u64,
+    /// Raw bytes read (sizes of the files read).
+    pub raw_bytes: u64,
+}
+
+fn fingerprint(files: &[DataFile]) -> serde_json::Value {
+    json!(files
+        .iter()
+        .map(|f| json!({"path": f.path.to_string(), "size": f.size, "modified": f.modified.to_rfc3339(), "etag": f.etag}))
+        .collect::<Vec<_>>())
+}
+
+/// Builds the tiles of `source` for `days` that are missing or stale.
+pub async fn ensure_tiles(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    report: &SourceReport,
+    layout: &TileLayout,
+    out: &Location,
+    days: &BTreeSet<NaiveDate>,
+) -> Result<TileStats, BuildError> {
+    let source = &pipeline.sources[&layout.source];
+    let mut stats = TileStats::default();
+    for day in days {
+        let Some(files) = report.listing.days.get(day) else {
+            continue;
+        };
+        let inputs = fingerprint(files);
+        let marker = child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"]);
+        if let Ok(stored) = out.store.get(&marker).await {
+            if let Ok(bytes) = stored.bytes().await {
+                if serde_json::from_slice::<serde_json::Value>(&bytes)
+                    .ok()
+                    .as_ref()
+                    == Some(&inputs)
+                {
+                    stats.partitions_reused += 1;
+                    continue;
+                }
+            }
+        }
+        let path = child(&layout.dir(out), &[&format!("dt={day}"), "part-0.parquet"]);
+        write_query(
+            ctx,
+            &tile_sql(pipeline, source, layout, *day),
+            out,
+            &path,
+            *day,
+            None,
+        )
+        .await?;
+        for (i, expr, filter) in &layout.distinct {
+            let path = child(
+                &layout.distinct_dir(out, *i),
+                &[&format!("dt={day}"), "part-0.parquet"],
+            );
+            write_query(
+                ctx,
+                &distinct_sql(pipeline, source, expr, filter, *day),
+                out,
+                &path,
+                *day,
+                None,
+            )
+            .await?;
+        }
+        // The fingerprint is written last: a crash before it leaves the tile to be rebuilt.
+        out.store
+            .put(
+                &marker,
+                PutPayload::from(serde_json::to_vec(&inputs).unwrap_or_default()),
+            )
+            .await
+            .map_err(|e| BuildError::Write {
+                day: *day,
+                path: marker.to_string(),
+                reason: e.to_string(),
+            })?;
+        stats.partitions_built += 1;
+        stats.raw_files += files.len() as u64;
+        stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
+    }
+    Ok(stats)
+}
+
+/// Registers a folder of day-partitioned tile files as a table.
+pub async fn register_tiles(
+    ctx: &SessionContext,
+    out: &Location,
+    dir: &StorePath,
+    table: &str,
+) -> datafusion::error::Result<()> {
+    let mut url = out.root_url.to_string();
+    if !url.ends_with('/') {
+        url.push('/');
+    }
+    url.push_str(dir.as_ref());
+    url.push('/');
+    let url = ListingTableUrl::parse(url)?;
+    let options = ListingOptions::new(Arc::new(ParquetFormat::default()))
+        .with_file_extension(".parquet")
+        .with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
+    let schema = options.infer_schema(&ctx.state(), &url).await?;
+    let config = ListingTableConfig::new(url)
+        .with_listing_options(options)
+        .with_schema(schema);
+    let _ = ctx.deregister_table(table);
+    ctx.register_table(table, Arc::new(ListingTable::try_new(config)?))?;
+    Ok(())
+}
+
+/// The tile layouts of every source that something reads.
+pub fn layouts(pipeline: &Pipeline) -> BTreeMap<String, TileLayout> {
+    pipeline
+        .sources
+        .values()
+        .filter_map(|s| layout(pipeline, s).map(|l| (s.name.clone(), l)))
+        .collect()
+}
+
+/// The snapshot of `day` combined from tiles (tables registered by [`register_tiles`]).
+pub fn tiled_snapshot_query(
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    day: NaiveDate,
+    mode: crate::sql::KnowledgeOverride,
+) -> crate::sql::SnapshotQuery {
+    use crate::sql::{fill_sql, finish, transform_sql};
+    let naive = crate::sql::snapshot_query(pipeline, day, mode);
+    let date = |d: NaiveDate| format!("CAST({} AS DATE)", literal(&d.to_string()));
+    let last = day
+        .pred_opt()
+        .expect("a day after the first representable one");
+    let d_days = (day - NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch")).num_days();
+    let mut ctes = Vec::new();
+    // Rows of each source's tiles that snapshot `day` may see.
+    let visible = |source: &str, table: &str| -> String {
+        let read = &naive.reads[source];
+        let mut conds = vec![
+            format!("dt <= {}", literal(&read.last_day.to_string())),
+            format!("__t <= {}", date(last)),
+        ];
+        if let Some(f) = read.first_day {
+            conds.push(format!("dt >= {}", literal(&f.to_string())));
+        }
+        if read.knowledge == daymark_spec::Knowledge::AsKnown {
+            conds.push(format!("__a <= {}", date(last)));
+        }
+        format!(
+            "SELECT * FROM {} WHERE {}",
+            ident(table),
+            conds.join(" AND ")
+        )
+    };
+    for (name, l) in layouts {
+        if naive.reads.contains_key(name) {
+            ctes.push(format!(
+                "{} AS ({})",
+                ident(&format!("{name}__rows")),
+                visible(name, &l.table())
+            ));
+        }
+    }
+    let start = |w: daymark_spec::Window| w.days().map(|n| day - chrono::Duration::days(n as i64));
+    let pop = match &pipeline.population {
+        Population::State(s) => {
+            let order = if pipeline.sources[&s.source].spec.arrival_time.is_some() {
+                "__pt, __pa, __ps"
+            } else {
+                "__pt, __ps"
+            };
+            let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
+            format!(
+                "SELECT __key FROM (SELECT __key, last_value(__ps ORDER BY {order}) AS __state FROM {} GROUP BY __key) WHERE __state IN ({})",
+                ident(&format!("{}__rows", s.source)),
+                values.join(", ")
+            )
+        }
+        Population::RecentActivity(a) => {
+            let since = start(a.within)
+                .map(|d| format!(" AND __t >= {}", date(d)))
+                .unwrap_or_default();
+            format!(
+                "SELECT __key FROM {} WHERE __pc > 0{since} GROUP BY __key",
+                ident(&format!("{}__rows", a.source))
+            )
+        }
+    };
+    ctes.push(format!("__population AS ({pop})"));
+
+    let mut layer0 = vec![
+        format!("p.__key AS {}", ident(&pipeline.file.key)),
+        format!("{} AS snapshot_date", date(day)),
+    ];
+    let mut per_source: BTreeMap<&str, Vec<String>> = BTreeMap::new();
+    let mut joins = Vec::new();
+    for (i, f) in pipeline.features.iter().enumerate() {
+        let FeatureDef::Aggregate {
+            source,
+            agg,
+            window,
+            ..
+        } = &f.def
+        else {
+            continue;
+        };
+        let has_arrival = pipeline.sources[source].spec.arrival_time.is_some();
+        let since = (!agg.is_unbounded())
+            .then(|| start(*window))
+            .flatten()
+            .map(|d| format!("__t >= {}", date(d)));
+        let with = |extra: Option<String>| -> String {
+            let c: Vec<String> = extra.into_iter().chain(since.clone()).collect();
+            if c.is_empty() {
+                String::new()
+            } else {
+                format!(" FILTER (WHERE {})", c.join(" AND "))
+            }
+        };
+        let rows = Some(format!("__c{i} > 0"));
+        let column = format!("__f{i}");
+        let value = match agg {
+            Aggregation::Count => format!("SUM(__c{i}){}", with(None)),
+            Aggregation::Sum => format!("SUM(__s{i}){}", with(None)),
+            Aggregation::Mean => format!(
+                "CASE WHEN SUM(__n{i}){w} > 0 THEN SUM(__s{i}){w} / CAST(SUM(__n{i}){w} AS DOUBLE) END",
+                w = with(None)
+            ),
+            Aggregation::Min => format!("MIN(__m{i}){}", with(None)),
+            Aggregation::Max => format!("MAX(__m{i}){}", with(None)),
+            Aggregation::ActiveDays => format!("COUNT(DISTINCT __t){}", with(rows)),
+            Aggregation::First | Aggregation::Last => {
+                let func = if *agg == Aggregation::First { "first_value" } else { "last_value" };
+                let order = if has_arrival { format!("__vt{i}, __va{i}, __v{i}") } else { format!("__vt{i}, __v{i}") };
+                format!("{func}(__v{i} ORDER BY {order}){}", with(rows))
+            }
+            Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__t){} AS BIGINT)", with(rows)),
+            Aggregation::DaysSinceLast => format!("{d_days} - CAST(MAX(__t){} AS BIGINT)", with(rows)),
+            Aggregation::CountDistinct => {
+                let l = &layouts[source];
+                let cte = format!("{source}__d{i}__agg");
+                let mut conds = vec![format!("__t <= {}", date(last))];
+                let read = &naive.reads[source];
+                conds.push(format!("dt <= {}", literal(&read.last_day.to_string())));
+                if let Some(fd) = read.first_day {
+                    conds.push(format!("dt >= {}", literal(&fd.to_string())));
+                }
+                if read.knowledge == daymark_spec::Knowledge::AsKnown {
+                    conds.push(format!("__a <= {}", date(last)));
+                }
+                conds.extend(since.clone());
+                ctes.push(format!(
+                    "{} AS (SELECT __key, COUNT(DISTINCT __v) AS __v FROM {} WHERE {} GROUP BY __key)",
+                    ident(&cte),
+                    ident(&l.distinct_table(i)),
+                    conds.join(" AND ")
+                ));
+                joins.push(format!("LEFT JOIN {c} ON {c}.__key = p.__key", c = ident(&cte)));
+                let v = format!("{}.__v", ident(&cte));
+                layer0.push(format!("{} AS {}", transform_sql(f, &format!("COALESCE({v}, {})", f.fill.as_ref().map(fill_sql).unwrap_or_else(|| "0".into()))), ident(&f.name)));
+                continue;
+            }
+        };
+        per_source
+            .entry(source.as_str())
+            .or_default()
+            .push(format!("{value} AS {column}"));
+        let v = format!("{}.{column}", ident(&format!("{source}__agg")));
+        let filled = match (&f.fill, agg.empty_is_zero()) {
+            (Some(fill), _) => format!("COALESCE({v}, {})", fill_sql(fill)),
+            (None, true) => format!("COALESCE({v}, 0)"),
+            (None, false) => v,
+        };
+        layer0.push(format!(
+            "{} AS {}",
+            transform_sql(f, &filled),
+            ident(&f.name)
+        ));
+    }
+    for (source, columns) in &per_source {
+        let cte = ident(&format!("{source}__agg"));
+        ctes.push(format!(
+            "{cte} AS (SELECT __key, {} FROM {} GROUP BY __key)",
+            columns.join(", "),
+            ident(&format!("{source}__rows"))
+        ));
+        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
+    }
+    let sql = finish(pipeline, &ctes, &layer0, &joins);
+    crate::sql::SnapshotQuery {
+        day,
+        cutoff: naive.cutoff,
+        reads: naive.reads,
+        sql,
+    }
+}
