@@ -3,7 +3,6 @@
 use crate::exit;
 use anyhow::{bail, Context, Result};
 use chrono::NaiveDate;
-use datafusion::prelude::SessionContext;
 use daymark_engine::{
     check_against_schemas, inspect_sources, register_sources, schemas_of, snapshot_query,
     SourceReport,
@@ -152,34 +151,11 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     let tiled = args.engine == "tiled";
     let layouts = daymark_engine::tiles::layouts(&pipeline);
     if tiled {
-        // Every raw partition any of the days needs, each built into tiles once.
-        let mut needed: BTreeMap<String, std::collections::BTreeSet<NaiveDate>> = BTreeMap::new();
-        for day in &days {
-            for (source, read) in snapshot_query(&pipeline, *day, mode).reads {
-                let r = &reports[&source];
-                let set = needed.entry(source).or_default();
-                let first = read.first_day.or(r.range().map(|x| x.0));
-                for d in r.listing.days.keys() {
-                    if first.is_none_or(|f| *d >= f) && *d <= read.last_day {
-                        set.insert(*d);
-                    }
-                }
-            }
-        }
+        let per_source =
+            daymark_engine::tiles::prepare(&ctx, &pipeline, &reports, &layouts, &out, &days, mode)
+                .await?;
         let mut total = daymark_engine::tiles::TileStats::default();
-        for (source, layout) in &layouts {
-            let Some(set) = needed.get(source) else {
-                continue;
-            };
-            let stats = daymark_engine::tiles::ensure_tiles(
-                &ctx,
-                &pipeline,
-                &reports[source],
-                layout,
-                &out,
-                set,
-            )
-            .await?;
+        for (source, stats) in &per_source {
             println!(
                 "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused",
                 stats.partitions_built,
@@ -187,28 +163,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                 human_bytes(stats.raw_bytes),
                 stats.partitions_reused
             );
-            total.partitions_built += stats.partitions_built;
-            total.partitions_reused += stats.partitions_reused;
-            total.raw_files += stats.raw_files;
-            total.raw_bytes += stats.raw_bytes;
-            if !set.is_empty() {
-                daymark_engine::tiles::register_tiles(
-                    &ctx,
-                    &out,
-                    &layout.dir(&out),
-                    &layout.table(),
-                )
-                .await?;
-                for (i, _, _) in &layout.distinct {
-                    daymark_engine::tiles::register_tiles(
-                        &ctx,
-                        &out,
-                        &layout.distinct_dir(&out, *i),
-                        &layout.distinct_table(*i),
-                    )
-                    .await?;
-                }
-            }
+            total.add(stats);
         }
         println!(
             "read {} raw file(s), {} in all; {} tile partition(s) reused",
@@ -602,7 +557,7 @@ pub async fn explain(
             }
             return Ok(exit::INVALID);
         }
-        let ctx = SessionContext::new();
+        let ctx = daymark_engine::session::session(&Default::default())?;
         register_sources(&ctx, &pipeline, &reports).await?;
         let df = ctx
             .sql(&q.sql)

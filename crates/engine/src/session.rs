@@ -19,6 +19,13 @@ pub struct EngineOptions {
 /// A session with the given limits. Spill files go to the system's temporary folder.
 pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     let mut config = SessionConfig::new();
+    // Read strings as plain Utf8 so snapshots have the same column types whichever path
+    // (raw events or tiles) computed them.
+    config
+        .options_mut()
+        .execution
+        .parquet
+        .schema_force_view_types = false;
     if let Some(n) = opts.target_partitions {
         config = config.with_target_partitions(n.max(1));
     }

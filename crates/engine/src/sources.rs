@@ -127,9 +127,11 @@ pub async fn register_sources(
         let src = &pipeline.sources[name];
         let url = ListingTableUrl::parse(loc.url())?;
         ctx.register_object_store(&loc.root_url, loc.store.clone());
-        let options = ListingOptions::new(Arc::new(ParquetFormat::default()))
-            .with_file_extension(".parquet")
-            .with_table_partition_cols(vec![(src.spec.day_partition.clone(), DataType::Utf8)]);
+        let options = ListingOptions::new(Arc::new(
+            ParquetFormat::default().with_force_view_types(false),
+        ))
+        .with_file_extension(".parquet")
+        .with_table_partition_cols(vec![(src.spec.day_partition.clone(), DataType::Utf8)]);
         let config = ListingTableConfig::new(url)
             .with_listing_options(options)
             .with_schema(schema.clone());

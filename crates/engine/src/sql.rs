@@ -402,7 +402,7 @@ pub(crate) fn finish(
                 .map(fill_sql)
                 .unwrap_or_else(|| "NULL".into());
             let v = match op {
-                DerivedOp::Ratio => format!("CASE WHEN {l} IS NULL OR {r} IS NULL OR {r} = 0 THEN {fill} ELSE CAST({l} AS DOUBLE) / CAST({r} AS DOUBLE) END"),
+                DerivedOp::Ratio => format!("CASE WHEN {l} IS NULL OR {r} IS NULL OR {r} = 0 THEN CAST({fill} AS DOUBLE) ELSE CAST({l} AS DOUBLE) / CAST({r} AS DOUBLE) END"),
                 DerivedOp::Difference if f.fill.is_some() => format!("COALESCE({l} - {r}, {fill})"),
                 DerivedOp::Difference => format!("{l} - {r}"),
             };

@@ -250,6 +250,67 @@ pub struct TileStats {
     pub raw_bytes: u64,
 }
 
+impl TileStats {
+    /// Adds `other` to these counts.
+    pub fn add(&mut self, other: &TileStats) {
+        self.partitions_built += other.partitions_built;
+        self.partitions_reused += other.partitions_reused;
+        self.raw_files += other.raw_files;
+        self.raw_bytes += other.raw_bytes;
+    }
+}
+
+/// Makes sure the tiles every one of `days` needs exist and are current, then registers
+/// them as tables. Each raw partition is read at most once, and not at all when its stored
+/// tile is current. Returns what it cost, per source.
+pub async fn prepare(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    reports: &BTreeMap<String, SourceReport>,
+    layouts: &BTreeMap<String, TileLayout>,
+    out: &Location,
+    days: &[NaiveDate],
+    mode: crate::sql::KnowledgeOverride,
+) -> Result<BTreeMap<String, TileStats>, BuildError> {
+    let mut needed: BTreeMap<String, BTreeSet<NaiveDate>> = BTreeMap::new();
+    for day in days {
+        for (source, read) in crate::sql::snapshot_query(pipeline, *day, mode).reads {
+            let r = &reports[&source];
+            let set = needed.entry(source).or_default();
+            let first = read.first_day.or(r.range().map(|x| x.0));
+            for d in r.listing.days.keys() {
+                if first.is_none_or(|f| *d >= f) && *d <= read.last_day {
+                    set.insert(*d);
+                }
+            }
+        }
+    }
+    let mut stats = BTreeMap::new();
+    for (source, layout) in layouts {
+        let Some(set) = needed.get(source) else {
+            continue;
+        };
+        let s = ensure_tiles(ctx, pipeline, &reports[source], layout, out, set).await?;
+        stats.insert(source.clone(), s);
+        if set.is_empty() {
+            continue;
+        }
+        let register = |dir: StorePath, table: String| async move {
+            register_tiles(ctx, out, &dir, &table)
+                .await
+                .map_err(|e| BuildError::Engine {
+                    day: days[0],
+                    source: e,
+                })
+        };
+        register(layout.dir(out), layout.table()).await?;
+        for (i, _, _) in &layout.distinct {
+            register(layout.distinct_dir(out, *i), layout.distinct_table(*i)).await?;
+        }
+    }
+    Ok(stats)
+}
+
 fn fingerprint(files: &[DataFile]) -> serde_json::Value {
     json!(files
         .iter()
@@ -344,9 +405,11 @@ pub async fn register_tiles(
     url.push_str(dir.as_ref());
     url.push('/');
     let url = ListingTableUrl::parse(url)?;
-    let options = ListingOptions::new(Arc::new(ParquetFormat::default()))
-        .with_file_extension(".parquet")
-        .with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
+    let options = ListingOptions::new(Arc::new(
+        ParquetFormat::default().with_force_view_types(false),
+    ))
+    .with_file_extension(".parquet")
+    .with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
     let schema = options.infer_schema(&ctx.state(), &url).await?;
     let config = ListingTableConfig::new(url)
         .with_listing_options(options)
