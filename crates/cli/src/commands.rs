@@ -47,6 +47,9 @@ pub struct BuildArgs {
     /// `naive`: one query over the raw events of each day's windows (the reference path).
     #[arg(long, default_value = "tiled", value_parser = ["tiled", "naive"])]
     engine: String,
+    /// `text` (default) or `json`: one JSON object per line on stdout, for schedulers.
+    #[arg(long, default_value = "text", value_parser = ["text", "json"])]
+    log_format: String,
 }
 
 fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
@@ -148,6 +151,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     register_sources(&ctx, &pipeline, &reports).await?;
     daymark_engine::build::write_dictionary(&pipeline, &types, &out, mode).await?;
     let t0 = std::time::Instant::now();
+    let log = crate::report::Report::new(&args.log_format);
     let tiled = args.engine == "tiled";
     let layouts = daymark_engine::tiles::layouts(&pipeline);
     if tiled {
@@ -156,20 +160,32 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                 .await?;
         let mut total = daymark_engine::tiles::TileStats::default();
         for (source, stats) in &per_source {
-            println!(
-                "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused",
-                stats.partitions_built,
-                stats.raw_files,
-                human_bytes(stats.raw_bytes),
-                stats.partitions_reused
+            log.event(
+                "tiles",
+                || {
+                    format!(
+                        "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused",
+                        stats.partitions_built,
+                        stats.raw_files,
+                        human_bytes(stats.raw_bytes),
+                        stats.partitions_reused
+                    )
+                },
+                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes}),
             );
             total.add(stats);
         }
-        println!(
-            "read {} raw file(s), {} in all; {} tile partition(s) reused",
-            total.raw_files,
-            human_bytes(total.raw_bytes),
-            total.partitions_reused
+        log.event(
+            "read",
+            || {
+                format!(
+                    "read {} raw file(s), {} in all; {} tile partition(s) reused",
+                    total.raw_files,
+                    human_bytes(total.raw_bytes),
+                    total.partitions_reused
+                )
+            },
+            json!({"raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused}),
         );
     }
     let mut rows = 0u64;
@@ -185,20 +201,29 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             Ok(r) => {
                 rows += r.rows;
                 warnings += r.warnings.len();
-                println!(
-                    "[{}/{}] snapshot {}: {} rows, {} in {:.2} s",
-                    i + 1,
-                    days.len(),
-                    r.day,
-                    r.rows,
-                    human_bytes(r.bytes),
-                    r.seconds
+                log.event(
+                    "snapshot",
+                    || {
+                        let mut line = format!(
+                            "[{}/{}] snapshot {}: {} rows, {} in {:.2} s",
+                            i + 1,
+                            days.len(),
+                            r.day,
+                            r.rows,
+                            human_bytes(r.bytes),
+                            r.seconds
+                        );
+                        for w in &r.warnings {
+                            line.push_str(&format!("\n    warning: {w}"));
+                        }
+                        line
+                    },
+                    json!({"day": r.day.to_string(), "rows": r.rows, "bytes": r.bytes, "seconds": r.seconds, "warnings": r.warnings}),
                 );
-                for w in &r.warnings {
-                    println!("    warning: {w}");
-                }
+                log.progress(i + 1, days.len(), rows);
             }
             Err(daymark_engine::build::BuildError::ChecksFailed { day, failures }) => {
+                log.clear();
                 eprintln!(
                     "snapshot {day}: {} check(s) failed; nothing published for it:",
                     failures.len()
@@ -211,13 +236,16 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             Err(e) => return Err(e.into()),
         }
     }
-    println!(
-        "built {} snapshot(s), {rows} rows, in {:.1} s ({} warning(s)) into {}/{}",
-        days.len(),
-        t0.elapsed().as_secs_f64(),
-        warnings,
+    let place = format!(
+        "{}/{}",
         out.display().trim_end_matches('/'),
         daymark_engine::build::snapshots_dir(mode)
+    );
+    let secs = t0.elapsed().as_secs_f64();
+    log.event(
+        "done",
+        || format!("built {} snapshot(s), {rows} rows, in {secs:.1} s ({warnings} warning(s)) into {place}", days.len()),
+        json!({"snapshots": days.len(), "rows": rows, "seconds": secs, "warnings": warnings, "output": place}),
     );
     Ok(exit::OK)
 }
@@ -663,6 +691,7 @@ pub async fn demo(dir: &Path, customers: u32, days: u32) -> Result<u8> {
         memory_limit: None,
         allow_gaps: false,
         engine: "tiled".into(),
+        log_format: "text".into(),
     })
     .await?;
     println!();

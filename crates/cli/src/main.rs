@@ -1,6 +1,7 @@
 //! The `daymark` command line.
 
 mod commands;
+mod report;
 
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;

@@ -95,6 +95,44 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     assert!(stdout.contains("DataFusion's optimised logical plan"));
     // The 7-day window starts at local midnight seven days earlier, still in winter time.
     assert!(stdout.contains("2026-03-02T06:00:00.000000Z"), "{stdout}");
+
+    // A build reads the raw partitions once; the next day's build reads none it has seen.
+    let out_dir = dir.path().join("out");
+    let build = |day: &str| {
+        let out = daymark()
+            .args([
+                "build",
+                pipeline.to_str().unwrap(),
+                "--date",
+                day,
+                "--out",
+                out_dir.to_str().unwrap(),
+                "--log-format",
+                "json",
+            ])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let events: Vec<serde_json::Value> = String::from_utf8_lossy(&out.stdout)
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect();
+        events.into_iter().find(|e| e["event"] == "read").unwrap()
+    };
+    let first = build("2026-03-30");
+    assert!(first["raw_files"].as_u64().unwrap() > 100, "{first}");
+    assert_eq!(first["partitions_reused"], 0);
+    let second = build("2026-03-31");
+    assert_eq!(second["raw_files"], 0, "{second}");
+    assert!(second["partitions_reused"].as_u64().unwrap() > 40);
+    assert!(out_dir
+        .join("snapshots/dt=2026-03-31/part-0.parquet")
+        .exists());
+    assert!(out_dir.join("snapshots/_features.json").exists());
 }
 
 fn walk(dir: &Path) -> Vec<std::path::PathBuf> {
