@@ -364,19 +364,8 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
             .features
             .iter()
             .map(|f| {
-                let mut v = json!({"name": f.name, "hash": f.hash, "type": types.get(&f.name).map(|t| t.to_string())});
-                match &f.def {
-                    FeatureDef::Aggregate { source, agg, expr, filter, window } => {
-                        v["source"] = json!(source);
-                        v["agg"] = json!(agg.as_str());
-                        v["expr"] = json!(expr);
-                        v["filter"] = json!(filter);
-                        v["window"] = json!(window.suffix());
-                    }
-                    FeatureDef::Derived { op, left, right } => {
-                        v[op.as_str()] = json!([left, right]);
-                    }
-                }
+                let mut v = f.describe();
+                v["type"] = json!(types.get(&f.name).map(|t| t.to_string()));
                 v
             })
             .collect();

@@ -13,7 +13,7 @@ use arrow::compute::cast;
 use arrow::datatypes::{DataType, Float64Type};
 use chrono::NaiveDate;
 use datafusion::prelude::SessionContext;
-use daymark_spec::{FeatureDef, Knowledge, OnFail, Pipeline};
+use daymark_spec::{Knowledge, OnFail, Pipeline};
 use daymark_store::object_store::buffered::BufWriter;
 use daymark_store::object_store::path::Path as StorePath;
 use daymark_store::object_store::{ObjectStoreExt, PutPayload};
@@ -340,32 +340,8 @@ pub async fn write_dictionary(
         .features
         .iter()
         .map(|f| {
-            let mut v = json!({
-                "name": f.name,
-                "description": f.description,
-                "type": types.get(&f.name).map(|t| t.to_string()),
-                "fill": f.fill,
-                "transform": f.transform,
-                "hash": f.hash,
-            });
-            match &f.def {
-                FeatureDef::Aggregate {
-                    source,
-                    agg,
-                    expr,
-                    filter,
-                    window,
-                } => {
-                    v["source"] = json!(source);
-                    v["aggregation"] = json!(agg.as_str());
-                    v["expr"] = json!(expr);
-                    v["filter"] = json!(filter);
-                    v["window"] = json!(window.suffix());
-                }
-                FeatureDef::Derived { op, left, right } => {
-                    v["derived"] = json!({ op.as_str(): [left, right] });
-                }
-            }
+            let mut v = f.describe();
+            v["type"] = json!(types.get(&f.name).map(|t| t.to_string()));
             v
         })
         .collect();

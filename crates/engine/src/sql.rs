@@ -318,28 +318,10 @@ pub fn snapshot_query(
             .entry(source.as_str())
             .or_default()
             .push(format!("{value} AS {column}"));
-        let cte = format!("{}__agg", source);
-        let v = format!("{}.{column}", ident(&cte));
-        let filled = match (&f.fill, agg.empty_is_zero()) {
-            (Some(fill), _) => format!("COALESCE({v}, {})", fill_sql(fill)),
-            (None, true) => format!("COALESCE({v}, 0)"),
-            (None, false) => v,
-        };
-        layer0.push(format!(
-            "{} AS {}",
-            transform_sql(f, &filled),
-            ident(&f.name)
-        ));
+        let v = format!("{}.{column}", ident(&format!("{source}__agg")));
+        layer0.push(feature_column(f, *agg, &v));
     }
-    for (source, columns) in &per_source {
-        let cte = ident(&format!("{source}__agg"));
-        ctes.push(format!(
-            "{cte} AS (SELECT __key, {} FROM {} GROUP BY __key)",
-            columns.join(", "),
-            ident(&format!("{source}__rows"))
-        ));
-        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
-    }
+    join_source_aggregates(&per_source, &mut ctes, &mut joins);
 
     let sql = finish(pipeline, &ctes, &layer0, &joins);
     SnapshotQuery {
@@ -347,6 +329,35 @@ pub fn snapshot_query(
         cutoff,
         reads,
         sql,
+    }
+}
+
+/// The output column of source feature `f` whose aggregate is the SQL value `v`: the fill
+/// for an empty window (0 for counts), then the transforms.
+pub(crate) fn feature_column(f: &Feature, agg: Aggregation, v: &str) -> String {
+    let filled = match (&f.fill, agg.empty_is_zero()) {
+        (Some(fill), _) => format!("COALESCE({v}, {})", fill_sql(fill)),
+        (None, true) => format!("COALESCE({v}, 0)"),
+        (None, false) => v.to_string(),
+    };
+    format!("{} AS {}", transform_sql(f, &filled), ident(&f.name))
+}
+
+/// One `<source>__agg` CTE per source (grouping its `<source>__rows` by key into the given
+/// aggregate columns), each joined to the population.
+pub(crate) fn join_source_aggregates(
+    per_source: &BTreeMap<&str, Vec<String>>,
+    ctes: &mut Vec<String>,
+    joins: &mut Vec<String>,
+) {
+    for (source, columns) in per_source {
+        let cte = ident(&format!("{source}__agg"));
+        ctes.push(format!(
+            "{cte} AS (SELECT __key, {} FROM {} GROUP BY __key)",
+            columns.join(", "),
+            ident(&format!("{source}__rows"))
+        ));
+        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
     }
 }
 

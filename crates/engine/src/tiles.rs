@@ -435,7 +435,7 @@ pub fn tiled_snapshot_query(
     day: NaiveDate,
     mode: crate::sql::KnowledgeOverride,
 ) -> crate::sql::SnapshotQuery {
-    use crate::sql::{fill_sql, finish, transform_sql};
+    use crate::sql::{feature_column, finish, join_source_aggregates};
     let naive = crate::sql::snapshot_query(pipeline, day, mode);
     let date = |d: NaiveDate| format!("CAST({} AS DATE)", literal(&d.to_string()));
     let last = day
@@ -567,7 +567,7 @@ pub fn tiled_snapshot_query(
                 ));
                 joins.push(format!("LEFT JOIN {c} ON {c}.__key = p.__key", c = ident(&cte)));
                 let v = format!("{}.__v", ident(&cte));
-                layer0.push(format!("{} AS {}", transform_sql(f, &format!("COALESCE({v}, {})", f.fill.as_ref().map(fill_sql).unwrap_or_else(|| "0".into()))), ident(&f.name)));
+                layer0.push(feature_column(f, *agg, &v));
                 continue;
             }
         };
@@ -576,26 +576,9 @@ pub fn tiled_snapshot_query(
             .or_default()
             .push(format!("{value} AS {column}"));
         let v = format!("{}.{column}", ident(&format!("{source}__agg")));
-        let filled = match (&f.fill, agg.empty_is_zero()) {
-            (Some(fill), _) => format!("COALESCE({v}, {})", fill_sql(fill)),
-            (None, true) => format!("COALESCE({v}, 0)"),
-            (None, false) => v,
-        };
-        layer0.push(format!(
-            "{} AS {}",
-            transform_sql(f, &filled),
-            ident(&f.name)
-        ));
+        layer0.push(feature_column(f, *agg, &v));
     }
-    for (source, columns) in &per_source {
-        let cte = ident(&format!("{source}__agg"));
-        ctes.push(format!(
-            "{cte} AS (SELECT __key, {} FROM {} GROUP BY __key)",
-            columns.join(", "),
-            ident(&format!("{source}__rows"))
-        ));
-        joins.push(format!("LEFT JOIN {cte} ON {cte}.__key = p.__key"));
-    }
+    join_source_aggregates(&per_source, &mut ctes, &mut joins);
     let sql = finish(pipeline, &ctes, &layer0, &joins);
     crate::sql::SnapshotQuery {
         day,

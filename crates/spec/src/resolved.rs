@@ -139,6 +139,39 @@ impl DerivedOp {
     }
 }
 
+impl Feature {
+    /// The feature as JSON, for reports and the feature dictionary: name, hash, fill,
+    /// transform, description, and either source/agg/expr/filter/window or the derivation.
+    pub fn describe(&self) -> serde_json::Value {
+        let mut v = serde_json::json!({
+            "name": self.name,
+            "hash": self.hash,
+            "description": self.description,
+            "fill": self.fill,
+            "transform": self.transform,
+        });
+        match &self.def {
+            FeatureDef::Aggregate {
+                source,
+                agg,
+                expr,
+                filter,
+                window,
+            } => {
+                v["source"] = serde_json::json!(source);
+                v["agg"] = serde_json::json!(agg.as_str());
+                v["expr"] = serde_json::json!(expr);
+                v["filter"] = serde_json::json!(filter);
+                v["window"] = serde_json::json!(window.suffix());
+            }
+            FeatureDef::Derived { op, left, right } => {
+                v[op.as_str()] = serde_json::json!([left, right]);
+            }
+        }
+        v
+    }
+}
+
 impl Pipeline {
     /// A feature by name.
     pub fn feature(&self, name: &str) -> Option<&Feature> {
