@@ -164,14 +164,16 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                 "tiles",
                 || {
                     format!(
-                        "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused",
+                        "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused; ignored {} row(s) with a null key; {} row(s) with an event time after their arrival",
                         stats.partitions_built,
                         stats.raw_files,
                         human_bytes(stats.raw_bytes),
-                        stats.partitions_reused
+                        stats.partitions_reused,
+                        stats.null_key_rows,
+                        stats.event_after_arrival_rows
                     )
                 },
-                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes}),
+                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.null_key_rows, "event_after_arrival_rows": stats.event_after_arrival_rows}),
             );
             total.add(stats);
         }
@@ -185,7 +187,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                     total.partitions_reused
                 )
             },
-            json!({"raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused}),
+            json!({"raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.null_key_rows, "event_after_arrival_rows": total.event_after_arrival_rows}),
         );
     }
     let mut rows = 0u64;

@@ -31,6 +31,14 @@ use serde_json::json;
 use std::collections::{BTreeMap, BTreeSet};
 use std::sync::Arc;
 
+/// Version of the tile file format; part of every tile folder's hash, so a new format is
+/// rebuilt rather than misread.
+const TILE_FORMAT: u32 = 2;
+
+/// Rows whose event time is more than this many seconds after their arrival time are
+/// counted as clock problems (common practice: a few minutes of skew between producers).
+pub const CLOCK_SKEW_TOLERANCE_SECS: i64 = 300;
+
 /// What the tile files of one source contain.
 #[derive(Debug, Clone)]
 pub struct TileLayout {
@@ -156,6 +164,7 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
         return None;
     }
     let hash = hash_value(&json!({
+        "format": TILE_FORMAT,
         "source": serde_json::to_value(&source.spec).unwrap_or_default(),
         "key": source.key,
         "timezone": pipeline.file.timezone,
@@ -177,12 +186,11 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, day: NaiveDate) -> String {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
     let base = format!(
-        "SELECT *, {} AS __key FROM {} WHERE {} = {} AND {} IS NOT NULL",
+        "SELECT *, {} AS __key FROM {} WHERE {} = {}",
         ident(&source.key),
         ident(&source.name),
         ident(&source.spec.day_partition),
         literal(&day.to_string()),
-        ident(&source.key)
     );
     let deduped = if source.spec.dedupe_on.is_empty() {
         base
@@ -211,6 +219,17 @@ pub fn tile_sql(
     day: NaiveDate,
 ) -> String {
     let mut cols = vec!["__key".to_string(), "__t".to_string(), "__a".to_string()];
+    // Rows with a null key stay in the tile (under a null key) only to be counted; rows
+    // whose event time is after their arrival beyond the tolerance are counted too.
+    cols.push("COUNT(*) AS __rows".to_string());
+    cols.push(match &source.spec.arrival_time {
+        Some(a) => format!(
+            "COUNT(*) FILTER (WHERE {} > {} + INTERVAL '{CLOCK_SKEW_TOLERANCE_SECS} seconds') AS __ahead",
+            ident(&source.spec.event_time),
+            ident(a)
+        ),
+        None => "CAST(0 AS BIGINT) AS __ahead".to_string(),
+    });
     cols.extend(layout.columns.iter().cloned());
     format!(
         "SELECT {} FROM ({}) GROUP BY __key, __t, __a",
@@ -232,7 +251,7 @@ pub fn distinct_sql(
         .map(|f| format!(" AND ({f})"))
         .unwrap_or_default();
     format!(
-        "SELECT DISTINCT __key, __t, __a, {expr} AS __v FROM ({}) WHERE {expr} IS NOT NULL{wh}",
+        "SELECT DISTINCT __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh}",
         rows_sql(pipeline, source, day)
     )
 }
@@ -248,6 +267,10 @@ pub struct TileStats {
     pub raw_files: u64,
     /// Raw bytes read (sizes of the files read).
     pub raw_bytes: u64,
+    /// Rows with a null key in the partitions the build covers (ignored, counted).
+    pub null_key_rows: u64,
+    /// Rows whose event time is after their arrival time beyond the tolerance.
+    pub event_after_arrival_rows: u64,
 }
 
 impl TileStats {
@@ -257,6 +280,8 @@ impl TileStats {
         self.partitions_reused += other.partitions_reused;
         self.raw_files += other.raw_files;
         self.raw_bytes += other.raw_bytes;
+        self.null_key_rows += other.null_key_rows;
+        self.event_after_arrival_rows += other.event_after_arrival_rows;
     }
 }
 
@@ -290,9 +315,9 @@ pub async fn prepare(
         let Some(set) = needed.get(source) else {
             continue;
         };
-        let s = ensure_tiles(ctx, pipeline, &reports[source], layout, out, set).await?;
-        stats.insert(source.clone(), s);
+        let mut s = ensure_tiles(ctx, pipeline, &reports[source], layout, out, set).await?;
         if set.is_empty() {
+            stats.insert(source.clone(), s);
             continue;
         }
         let register = |dir: StorePath, table: String| async move {
@@ -307,6 +332,34 @@ pub async fn prepare(
         for (i, _, _) in &layout.distinct {
             register(layout.distinct_dir(out, *i), layout.distinct_table(*i)).await?;
         }
+        let (first, last) = (
+            set.first().expect("not empty"),
+            set.last().expect("not empty"),
+        );
+        let counts = format!(
+            "SELECT CAST(COALESCE(SUM(__rows) FILTER (WHERE __key IS NULL), 0) AS BIGINT), CAST(COALESCE(SUM(__ahead), 0) AS BIGINT) FROM {} WHERE dt >= {} AND dt <= {}",
+            ident(&layout.table()),
+            literal(&first.to_string()),
+            literal(&last.to_string())
+        );
+        let engine = |e| BuildError::Engine {
+            day: days[0],
+            source: e,
+        };
+        let batches = ctx
+            .sql(&counts)
+            .await
+            .map_err(engine)?
+            .collect()
+            .await
+            .map_err(engine)?;
+        if let Some(b) = batches.first().filter(|b| b.num_rows() > 0) {
+            use datafusion::arrow::array::AsArray;
+            use datafusion::arrow::datatypes::Int64Type;
+            s.null_key_rows = b.column(0).as_primitive::<Int64Type>().value(0) as u64;
+            s.event_after_arrival_rows = b.column(1).as_primitive::<Int64Type>().value(0) as u64;
+        }
+        stats.insert(source.clone(), s);
     }
     Ok(stats)
 }
@@ -447,6 +500,7 @@ pub fn tiled_snapshot_query(
     let visible = |source: &str, table: &str| -> String {
         let read = &naive.reads[source];
         let mut conds = vec![
+            "__key IS NOT NULL".to_string(),
             format!("dt <= {}", literal(&read.last_day.to_string())),
             format!("__t <= {}", date(last)),
         ];

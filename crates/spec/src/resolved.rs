@@ -177,21 +177,4 @@ impl Pipeline {
     pub fn feature(&self, name: &str) -> Option<&Feature> {
         self.features.iter().find(|f| f.name == name)
     }
-
-    /// The longest window of any source feature, in days (`None` if some feature is `all`).
-    pub fn longest_window(&self) -> Option<u32> {
-        let mut longest = 0;
-        for f in &self.features {
-            if let FeatureDef::Aggregate { window, agg, .. } = &f.def {
-                if agg.is_unbounded() {
-                    return None;
-                }
-                match window.days() {
-                    Some(d) => longest = longest.max(d),
-                    None => return None,
-                }
-            }
-        }
-        Some(longest)
-    }
 }
