@@ -66,6 +66,16 @@ fn parse_day(text: &str) -> Result<NaiveDate> {
         .with_context(|| format!("`{text}` is not a date (YYYY-MM-DD)"))
 }
 
+/// Adds what to do when the engine ran out of its memory budget.
+fn memory_hint(e: anyhow::Error) -> anyhow::Error {
+    let text = format!("{e:#}");
+    if text.contains("Failed to allocate") || text.contains("Resources exhausted") {
+        e.context("the engine's memory limit is too small for this step even with spilling to disk: raise --memory-limit")
+    } else {
+        e
+    }
+}
+
 /// `daymark build`.
 pub async fn build(args: BuildArgs) -> Result<u8> {
     let mode = parse_mode(args.knowledge.as_deref())?;
@@ -157,7 +167,8 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     if tiled {
         let per_source =
             daymark_engine::tiles::prepare(&ctx, &pipeline, &reports, &layouts, &out, &days, mode)
-                .await?;
+                .await
+                .map_err(|e| memory_hint(e.into()))?;
         let mut total = daymark_engine::tiles::TileStats::default();
         for (source, stats) in &per_source {
             log.event(
@@ -235,7 +246,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                 }
                 return Ok(exit::CHECK_FAILED);
             }
-            Err(e) => return Err(e.into()),
+            Err(e) => return Err(memory_hint(e.into())),
         }
     }
     let place = format!(

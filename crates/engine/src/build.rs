@@ -30,7 +30,7 @@ use std::time::Instant;
 #[derive(Debug, thiserror::Error)]
 pub enum BuildError {
     /// The query engine failed.
-    #[error("snapshot {day}: {source}")]
+    #[error("day {day}: {source}")]
     Engine {
         /// The snapshot day.
         day: NaiveDate,
@@ -38,7 +38,7 @@ pub enum BuildError {
         source: datafusion::error::DataFusionError,
     },
     /// Writing to the output store failed.
-    #[error("snapshot {day}: cannot write {path}: {reason}")]
+    #[error("day {day}: cannot write {path}: {reason}")]
     Write {
         /// The snapshot day.
         day: NaiveDate,
