@@ -1,7 +1,7 @@
 //! The commands' bodies.
 
 use crate::exit;
-use anyhow::{bail, Context, Result};
+use anyhow::{Context, Result};
 use chrono::NaiveDate;
 use daymark_engine::{
     check_against_schemas, inspect_sources, register_sources, schemas_of, snapshot_query,
@@ -52,18 +52,44 @@ pub struct BuildArgs {
     log_format: String,
 }
 
+/// A command-line value that cannot be used: the command exits with code 2.
+#[derive(Debug)]
+pub struct InvalidInput(pub String);
+
+impl std::fmt::Display for InvalidInput {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for InvalidInput {}
+
+fn invalid(message: String) -> anyhow::Error {
+    InvalidInput(message).into()
+}
+
 fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     match knowledge {
         None => Ok(None),
         Some("as-known") => Ok(Some(Knowledge::AsKnown)),
         Some("event-time") => Ok(Some(Knowledge::EventTime)),
-        Some(other) => bail!("unknown knowledge mode `{other}`: use `as-known` or `event-time`"),
+        Some(other) => Err(invalid(format!(
+            "unknown knowledge mode `{other}`: use `as-known` or `event-time`"
+        ))),
     }
 }
 
 fn parse_day(text: &str) -> Result<NaiveDate> {
-    text.parse()
-        .with_context(|| format!("`{text}` is not a date (YYYY-MM-DD)"))
+    let day: NaiveDate = text
+        .parse()
+        .map_err(|_| invalid(format!("`{text}` is not a date (YYYY-MM-DD)")))?;
+    // Windows reach up to 100 years back; keep every date arithmetic far from the limits.
+    if !(1900..=2999).contains(&chrono::Datelike::year(&day)) {
+        return Err(invalid(format!(
+            "`{text}` is outside the supported years 1900 to 2999"
+        )));
+    }
+    Ok(day)
 }
 
 /// Adds what to do when the engine ran out of its memory budget.
@@ -84,14 +110,14 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         (None, Some(a), Some(b)) => {
             let (a, b) = (parse_day(a)?, parse_day(b)?);
             if b < a {
-                bail!("--to {b} is before --from {a}");
+                return Err(invalid(format!("--to {b} is before --from {a}")));
             }
             a.iter_days().take_while(|d| *d <= b).collect()
         }
-        _ => bail!("give --date D, or --from A --to B"),
+        _ => return Err(invalid("give --date D, or --from A --to B".into())),
     };
     let memory_limit = match &args.memory_limit {
-        Some(text) => Some(daymark_engine::session::parse_size(text).map_err(anyhow::Error::msg)?),
+        Some(text) => Some(daymark_engine::session::parse_size(text).map_err(invalid)?),
         None => None,
     };
     let pipeline = match load(&args.pipeline) {
@@ -612,10 +638,7 @@ pub async fn explain(
 
 /// `daymark generate`.
 pub fn generate(args: GenerateArgs) -> Result<u8> {
-    let start: NaiveDate = args
-        .start
-        .parse()
-        .with_context(|| format!("`{}` is not a date (YYYY-MM-DD)", args.start))?;
+    let start = parse_day(&args.start)?;
     let mut cfg = WorldConfig::new(&args.out, args.customers, args.days);
     cfg.start = start;
     cfg.seed = args.seed;

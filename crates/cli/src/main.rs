@@ -128,7 +128,11 @@ fn main() -> ExitCode {
         Ok(code) => ExitCode::from(code),
         Err(e) => {
             eprintln!("error: {e:#}");
-            ExitCode::from(exit::FAILED)
+            if e.downcast_ref::<commands::InvalidInput>().is_some() {
+                ExitCode::from(exit::INVALID)
+            } else {
+                ExitCode::from(exit::FAILED)
+            }
         }
     }
 }
