@@ -454,15 +454,19 @@ fn expand_feature(
                 return vec![];
             }
             let mut seen = HashSet::new();
+            let mut unique = Vec::new();
             for (j, w) in ws.iter().enumerate() {
-                if !seen.insert(*w) {
+                if seen.insert(*w) {
+                    unique.push(*w);
+                } else {
                     err(
                         &format!("windows[{j}]"),
                         format!("window `{w}` is listed twice"),
                     );
                 }
             }
-            ws.clone()
+            // One message per repeated window, not a second one for the repeated name.
+            unique
         }
         (None, None) if agg.is_unbounded() => vec![Window::All],
         (None, None) => {
