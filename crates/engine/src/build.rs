@@ -47,6 +47,14 @@ pub enum BuildError {
         /// Why.
         reason: String,
     },
+    /// Writing a file that belongs to no single day failed.
+    #[error("cannot write {path}: {reason}")]
+    Store {
+        /// The object.
+        path: String,
+        /// Why.
+        reason: String,
+    },
     /// A check configured to fail did fail; nothing was published.
     #[error("snapshot {day}: {} check(s) failed, nothing published:\n  {}", .failures.len(), .failures.join("\n  "))]
     ChecksFailed {
@@ -360,8 +368,7 @@ pub async fn write_dictionary(
     out.store
         .put(&path, PutPayload::from(body))
         .await
-        .map_err(|e| BuildError::Write {
-            day: NaiveDate::MIN,
+        .map_err(|e| BuildError::Store {
             path: path.to_string(),
             reason: e.to_string(),
         })?;
