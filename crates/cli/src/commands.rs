@@ -126,14 +126,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     };
     let (reports, problems, types) = inspect(&pipeline, &args.pipeline).await;
     if !problems.is_empty() {
-        eprintln!(
-            "{} problem{}:",
-            problems.len(),
-            if problems.len() == 1 { "" } else { "s" }
-        );
-        for d in &problems {
-            eprintln!("  {d}");
-        }
+        print_problems(&problems);
         return Ok(exit::INVALID);
     }
     // Every partition a window needs must exist (or carry a completeness marker).
@@ -322,6 +315,18 @@ pub struct GenerateArgs {
     threads: usize,
 }
 
+/// Prints problems found with the data, one a line, after a count.
+fn print_problems(problems: &[Diagnostic]) {
+    eprintln!(
+        "{} problem{}:",
+        problems.len(),
+        if problems.len() == 1 { "" } else { "s" }
+    );
+    for d in problems {
+        eprintln!("  {d}");
+    }
+}
+
 fn print_errors(e: &SpecErrors) {
     eprint!("{e}");
 }
@@ -399,15 +404,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
                 )
             })
             .collect();
-        let features: Vec<serde_json::Value> = pipeline
-            .features
-            .iter()
-            .map(|f| {
-                let mut v = f.describe();
-                v["type"] = json!(types.get(&f.name).map(|t| t.to_string()));
-                v
-            })
-            .collect();
+        let features = daymark_engine::build::describe_features(&pipeline, &types);
         let report = json!({
             "pipeline": pipeline.file.name,
             "hash": pipeline.hash,
@@ -551,14 +548,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
         println!("ok: no problems found");
         Ok(exit::OK)
     } else {
-        eprintln!(
-            "{} problem{}:",
-            problems.len(),
-            if problems.len() == 1 { "" } else { "s" }
-        );
-        for d in &problems {
-            eprintln!("  {d}");
-        }
+        print_problems(&problems);
         Ok(exit::INVALID)
     }
 }
@@ -608,9 +598,7 @@ pub async fn explain(
     if plan {
         let (reports, problems, _) = inspect(&pipeline, path).await;
         if !problems.is_empty() {
-            for d in &problems {
-                eprintln!("  {d}");
-            }
+            print_problems(&problems);
             return Ok(exit::INVALID);
         }
         let ctx = daymark_engine::session::session(&Default::default())?;

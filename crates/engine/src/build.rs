@@ -336,6 +336,19 @@ fn nanos_now() -> u128 {
         .unwrap_or(0)
 }
 
+/// Every feature as JSON (see [`daymark_spec::Feature::describe`]) with its output type.
+pub fn describe_features(pipeline: &Pipeline, types: &FeatureTypes) -> Vec<serde_json::Value> {
+    pipeline
+        .features
+        .iter()
+        .map(|f| {
+            let mut v = f.describe();
+            v["type"] = json!(types.get(&f.name).map(|t| t.to_string()));
+            v
+        })
+        .collect()
+}
+
 /// Writes the feature dictionary (`<snapshots dir>/_features.json`): one entry per output
 /// column with its meaning, type and hash.
 pub async fn write_dictionary(
@@ -344,15 +357,7 @@ pub async fn write_dictionary(
     out: &Location,
     mode: KnowledgeOverride,
 ) -> Result<(), BuildError> {
-    let features: Vec<serde_json::Value> = pipeline
-        .features
-        .iter()
-        .map(|f| {
-            let mut v = f.describe();
-            v["type"] = json!(types.get(&f.name).map(|t| t.to_string()));
-            v
-        })
-        .collect();
+    let features = describe_features(pipeline, types);
     let doc = json!({
         "pipeline": pipeline.file.name,
         "pipeline_hash": pipeline.hash,
