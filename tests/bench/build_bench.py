@@ -13,7 +13,11 @@ Parquet file per day:
   1. daymark build, tiled (a 365-day backfill), then the next day alone (daily build);
   2. DuckDB: daily rollups per key and day, window functions over them, an as-of join for
      the population (the straightforward way to write this job in SQL);
-and reports seconds, events per second, peak memory, and the ratios.
+  3. the I/O floor: a bare DataFusion scan (the `datafusion` Python package, the same
+     engine) of the event columns the job reads, plus writing one Parquet dataset with the
+     output's rows and columns;
+and reports seconds, events per second, peak memory, and the ratios. It also times the
+daily build of the next day with the longest window at 91 and at 365 days (same tiles).
 """
 
 import argparse
@@ -111,6 +115,24 @@ def duckdb_backfill(world, out, first, last, long):
     return time.perf_counter() - t, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
+def io_floor(world, out, rows, columns):
+    """A bare scan of the event columns the job reads, then one Parquet dataset of the
+    output's shape (rows x columns of doubles), both with DataFusion."""
+    import datafusion
+
+    ctx = datafusion.SessionContext()
+    t = time.perf_counter()
+    ctx.register_parquet("plays", f"{world}/plays/", file_extension=".parquet")
+    ctx.register_parquet("subs", f"{world}/subscriptions/", file_extension=".parquet")
+    # Touch every value of every column the job reads.
+    ctx.sql("""SELECT count(event_id), count(DISTINCT customer_id), min(event_time), max(arrived_at),
+               sum(seconds_played) FROM plays""").collect()
+    ctx.sql("SELECT count(change_id), count(customer_id), min(changed_at), max(arrived_at), max(status) FROM subs").collect()
+    cols = ", ".join(f"CAST(value % {97 + c} AS DOUBLE) AS c{c}" for c in range(columns))
+    ctx.sql(f"SELECT value AS customer_id, {cols} FROM range({rows})").write_parquet(str(out))
+    return time.perf_counter() - t
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--customers", type=int, default=30000)
@@ -138,13 +160,26 @@ def main():
     build = [args.binary, "build", pipeline, "--knowledge", "event-time", "--log-format", "json"]
     b_secs, b_rss, _ = timed(build + ["--from", first, "--to", last])
     d_secs, d_rss, _ = timed(build + ["--date", last + dt.timedelta(days=1)])
+    # The same daily build with a 365-day longest window (the tiles are shared).
+    pipeline365 = work / "bench365.yaml"
+    pipeline365.write_text(PIPELINE.format(out=work / "out365", world=world, long=365))
+    shutil.copytree(work / "out" / "tiles", work / "out365" / "tiles")
+    d365_secs, _, _ = timed([args.binary, "build", pipeline365, "--knowledge", "event-time",
+                             "--log-format", "json", "--date", last + dt.timedelta(days=1)])
     k_secs, k_rss = duckdb_backfill(world, work / "duckdb-out", first, last, args.long)
+    import duckdb
+    out_rows = duckdb.connect().execute(
+        f"SELECT count(*) FROM read_parquet('{work}/out/snapshots-event-time/*/*.parquet')").fetchone()[0]
+    f_secs = io_floor(world, work / "floor-out", out_rows, 9)
 
     n = args.backfill
     print(f"{n}-day backfill, daymark tiled: {b_secs:8.1f} s  {events / b_secs:12.0f} events/s  peak {b_rss:6.0f} MiB")
     print(f"{n}-day backfill, DuckDB SQL:    {k_secs:8.1f} s  {events / k_secs:12.0f} events/s  peak {k_rss:6.0f} MiB")
-    print(f"daily build (next day), daymark: {d_secs:8.1f} s  peak {d_rss:6.0f} MiB")
+    print(f"I/O floor (DataFusion scan + write {out_rows} rows): {f_secs:8.1f} s")
+    print(f"daily build (next day), daymark: {d_secs:8.1f} s  peak {d_rss:6.0f} MiB  (longest window {args.long} d)")
+    print(f"daily build, longest window 365 d: {d365_secs:6.1f} s  ratio 365/{args.long}: {d365_secs / d_secs:.2f}")
     print(f"ratio DuckDB / daymark backfill: {k_secs / b_secs:.2f}")
+    print(f"ratio daymark backfill / I/O floor: {b_secs / f_secs:.2f}")
     # The two agree (a sanity check, not the correctness test: that is tests/reference).
     import duckdb
     con = duckdb.connect()

@@ -222,50 +222,46 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     }
     let mut rows = 0u64;
     let mut warnings = 0usize;
-    for (i, day) in days.iter().enumerate() {
-        let query = if tiled {
-            daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, *day, mode)
-        } else {
-            snapshot_query(&pipeline, *day, mode)
-        };
-        match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode, &query.sql).await
-        {
-            Ok(r) => {
+    if tiled && days.len() > 1 {
+        // A backfill: every day from one set-based query over the tiles.
+        let mut done = 0usize;
+        let result = daymark_engine::backfill::build_range(
+            &ctx,
+            &pipeline,
+            &layouts,
+            &out,
+            &days,
+            mode,
+            |r| {
+                done += 1;
                 rows += r.rows;
                 warnings += r.warnings.len();
-                log.event(
-                    "snapshot",
-                    || {
-                        let mut line = format!(
-                            "[{}/{}] snapshot {}: {} rows, {} in {:.2} s",
-                            i + 1,
-                            days.len(),
-                            r.day,
-                            r.rows,
-                            human_bytes(r.bytes),
-                            r.seconds
-                        );
-                        for w in &r.warnings {
-                            line.push_str(&format!("\n    warning: {w}"));
-                        }
-                        line
-                    },
-                    json!({"day": r.day.to_string(), "rows": r.rows, "bytes": r.bytes, "seconds": r.seconds, "warnings": r.warnings}),
-                );
-                log.progress(i + 1, days.len(), rows);
-            }
-            Err(daymark_engine::build::BuildError::ChecksFailed { day, failures }) => {
-                log.clear();
-                eprintln!(
-                    "snapshot {day}: {} check(s) failed; nothing published for it:",
-                    failures.len()
-                );
-                for f in &failures {
-                    eprintln!("  {f}");
+                log_snapshot(&log, r, done, days.len());
+                log.progress(done, days.len(), rows);
+            },
+        )
+        .await;
+        if let Err(e) = result {
+            return report_build_error(&log, e);
+        }
+    } else {
+        for (i, day) in days.iter().enumerate() {
+            let query = if tiled {
+                daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, *day, mode)
+            } else {
+                snapshot_query(&pipeline, *day, mode)
+            };
+            match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode, &query.sql)
+                .await
+            {
+                Ok(r) => {
+                    rows += r.rows;
+                    warnings += r.warnings.len();
+                    log_snapshot(&log, &r, i + 1, days.len());
+                    log.progress(i + 1, days.len(), rows);
                 }
-                return Ok(exit::CHECK_FAILED);
+                Err(e) => return report_build_error(&log, e),
             }
-            Err(e) => return Err(memory_hint(e.into())),
         }
     }
     let place = format!(
@@ -280,6 +276,53 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         json!({"snapshots": days.len(), "rows": rows, "seconds": secs, "warnings": warnings, "output": place}),
     );
     Ok(exit::OK)
+}
+
+/// Prints one published snapshot (a line, or a JSON event).
+fn log_snapshot(
+    log: &crate::report::Report,
+    r: &daymark_engine::build::DayReport,
+    n: usize,
+    of: usize,
+) {
+    log.event(
+        "snapshot",
+        || {
+            let mut line = format!(
+                "[{n}/{of}] snapshot {}: {} rows, {} in {:.2} s",
+                r.day,
+                r.rows,
+                human_bytes(r.bytes),
+                r.seconds
+            );
+            for w in &r.warnings {
+                line.push_str(&format!("\n    warning: {w}"));
+            }
+            line
+        },
+        json!({"day": r.day.to_string(), "rows": r.rows, "bytes": r.bytes, "seconds": r.seconds, "warnings": r.warnings}),
+    );
+}
+
+/// A failed build: failed checks exit with their own code, the rest is an error.
+fn report_build_error(
+    log: &crate::report::Report,
+    e: daymark_engine::build::BuildError,
+) -> Result<u8> {
+    match e {
+        daymark_engine::build::BuildError::ChecksFailed { day, failures } => {
+            log.clear();
+            eprintln!(
+                "snapshot {day}: {} check(s) failed; nothing published for it:",
+                failures.len()
+            );
+            for f in &failures {
+                eprintln!("  {f}");
+            }
+            Ok(exit::CHECK_FAILED)
+        }
+        e => Err(memory_hint(e.into())),
+    }
 }
 
 /// Arguments of `daymark generate`.

@@ -218,6 +218,147 @@ pub fn writer_properties() -> WriterProperties {
         .build()
 }
 
+/// One Parquet file being written to a staging path, published by [`DayWriter::finish`].
+///
+/// The pipeline's expectations are tallied on the batches as they pass; a failing check
+/// configured to fail deletes the staging file and publishes nothing.
+pub struct DayWriter {
+    out: Location,
+    day: NaiveDate,
+    staging: StorePath,
+    final_path: StorePath,
+    writer: AsyncArrowWriter<BufWriter>,
+    rows: u64,
+    tallies: BTreeMap<String, Tally>,
+}
+
+impl DayWriter {
+    /// Opens a staging file that will become `final_path`.
+    pub fn new(
+        out: &Location,
+        final_path: StorePath,
+        day: NaiveDate,
+        schema: arrow::datatypes::SchemaRef,
+    ) -> Result<Self, BuildError> {
+        let staging = child(
+            &out.prefix,
+            &[
+                "_staging",
+                &format!(
+                    "{}.{}.{}",
+                    final_path.as_ref().replace('/', "_"),
+                    std::process::id(),
+                    nanos_now()
+                ),
+            ],
+        );
+        let writer = AsyncArrowWriter::try_new(
+            BufWriter::new(out.store.clone(), staging.clone()),
+            schema,
+            Some(writer_properties()),
+        )
+        .map_err(|e| BuildError::Write {
+            day,
+            path: staging.to_string(),
+            reason: e.to_string(),
+        })?;
+        Ok(DayWriter {
+            out: out.clone(),
+            day,
+            staging,
+            final_path,
+            writer,
+            rows: 0,
+            tallies: BTreeMap::new(),
+        })
+    }
+
+    /// The day this file belongs to.
+    pub fn day(&self) -> NaiveDate {
+        self.day
+    }
+
+    fn write_err(&self, path: &StorePath, reason: String) -> BuildError {
+        BuildError::Write {
+            day: self.day,
+            path: path.to_string(),
+            reason,
+        }
+    }
+
+    /// Appends a batch (and tallies expectations on it when the file is a snapshot).
+    pub async fn write(&mut self, batch: &RecordBatch) -> Result<(), BuildError> {
+        self.rows += batch.num_rows() as u64;
+        if let Err(e) = self.writer.write(batch).await {
+            let err = self.write_err(&self.staging, e.to_string());
+            let _ = self.out.store.delete(&self.staging).await;
+            return Err(err);
+        }
+        Ok(())
+    }
+
+    /// Tallies the pipeline's expectations on `batch` (call once per batch written).
+    pub fn tally(&mut self, pipeline: &Pipeline, batch: &RecordBatch) {
+        tally_batch(pipeline, batch, &mut self.tallies);
+    }
+
+    /// Closes the file; with `checks`, judges the expectations tallied so far; then
+    /// renames it into place. Returns (rows, bytes, warnings).
+    pub async fn finish(
+        self,
+        checks: Option<&Pipeline>,
+    ) -> Result<(u64, u64, Vec<String>), BuildError> {
+        let DayWriter {
+            out,
+            day,
+            staging,
+            final_path,
+            writer,
+            rows,
+            tallies,
+        } = self;
+        let write_err = |path: &StorePath, reason: String| BuildError::Write {
+            day,
+            path: path.to_string(),
+            reason,
+        };
+        if let Err(e) = writer.close().await {
+            let _ = out.store.delete(&staging).await;
+            return Err(write_err(&staging, e.to_string()));
+        }
+        let warnings = match checks {
+            Some(p) => {
+                let (fail, warnings) = judge(p, rows, &tallies);
+                if !fail.is_empty() {
+                    let _ = out.store.delete(&staging).await;
+                    return Err(BuildError::ChecksFailed {
+                        day,
+                        failures: fail,
+                    });
+                }
+                warnings
+            }
+            None => Vec::new(),
+        };
+        out.store
+            .rename(&staging, &final_path)
+            .await
+            .map_err(|e| write_err(&final_path, e.to_string()))?;
+        let bytes = out
+            .store
+            .head(&final_path)
+            .await
+            .map(|m| m.size)
+            .unwrap_or(0);
+        Ok((rows, bytes, warnings))
+    }
+
+    /// Abandons the file: deletes the staging object.
+    pub async fn abandon(self) {
+        let _ = self.out.store.delete(&self.staging).await;
+    }
+}
+
 /// Runs `sql` and writes its result as one Parquet file at `final_path`: first to a
 /// staging path, then renamed into place. With `checks`, the pipeline's expectations are
 /// tallied on the way and a failing check set to `fail` publishes nothing.
@@ -233,79 +374,21 @@ pub async fn write_query(
     let engine = |source| BuildError::Engine { day, source };
     let df = ctx.sql(sql).await.map_err(engine)?;
     let mut stream = df.execute_stream().await.map_err(engine)?;
-    let staging = child(
-        &out.prefix,
-        &[
-            "_staging",
-            &format!(
-                "{}.{}.{}",
-                final_path.as_ref().replace('/', "_"),
-                std::process::id(),
-                nanos_now()
-            ),
-        ],
-    );
-    let write_err = |path: &StorePath, reason: String| BuildError::Write {
-        day,
-        path: path.to_string(),
-        reason,
-    };
-    let mut writer = AsyncArrowWriter::try_new(
-        BufWriter::new(out.store.clone(), staging.clone()),
-        stream.schema(),
-        Some(writer_properties()),
-    )
-    .map_err(|e| write_err(&staging, e.to_string()))?;
-    let mut rows = 0u64;
-    let mut tallies = BTreeMap::new();
-    let result: Result<(), BuildError> = async {
-        while let Some(batch) = stream.next().await {
-            let batch = batch.map_err(engine)?;
-            rows += batch.num_rows() as u64;
-            if let Some(p) = checks {
-                tally_batch(p, &batch, &mut tallies);
+    let mut writer = DayWriter::new(out, final_path.clone(), day, stream.schema())?;
+    while let Some(batch) = stream.next().await {
+        let batch = match batch {
+            Ok(b) => b,
+            Err(e) => {
+                writer.abandon().await;
+                return Err(engine(e));
             }
-            writer
-                .write(&batch)
-                .await
-                .map_err(|e| write_err(&staging, e.to_string()))?;
+        };
+        if let Some(p) = checks {
+            writer.tally(p, &batch);
         }
-        writer
-            .close()
-            .await
-            .map_err(|e| write_err(&staging, e.to_string()))?;
-        Ok(())
+        writer.write(&batch).await?;
     }
-    .await;
-    if let Err(e) = result {
-        let _ = out.store.delete(&staging).await;
-        return Err(e);
-    }
-    let warnings = match checks {
-        Some(p) => {
-            let (fail, warnings) = judge(p, rows, &tallies);
-            if !fail.is_empty() {
-                let _ = out.store.delete(&staging).await;
-                return Err(BuildError::ChecksFailed {
-                    day,
-                    failures: fail,
-                });
-            }
-            warnings
-        }
-        None => Vec::new(),
-    };
-    out.store
-        .rename(&staging, final_path)
-        .await
-        .map_err(|e| write_err(final_path, e.to_string()))?;
-    let bytes = out
-        .store
-        .head(final_path)
-        .await
-        .map(|m| m.size)
-        .unwrap_or(0);
-    Ok((rows, bytes, warnings))
+    writer.finish(checks).await
 }
 
 /// Builds snapshot `day` from `sql` (naive or tiled) and publishes it.

@@ -5,10 +5,12 @@
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
+//! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
+pub mod backfill;
 pub mod build;
 pub mod check;
 pub mod session;

@@ -323,7 +323,7 @@ pub fn snapshot_query(
     }
     join_source_aggregates(&per_source, &mut ctes, &mut joins);
 
-    let sql = finish(pipeline, &ctes, &layer0, &joins);
+    let sql = finish(pipeline, &ctes, &layer0, &joins, "");
     SnapshotQuery {
         day,
         cutoff,
@@ -369,6 +369,7 @@ pub(crate) fn finish(
     ctes: &[String],
     layer0: &[String],
     joins: &[String],
+    order_prefix: &str,
 ) -> String {
     let key = ident(&pipeline.file.key);
     // Derived features in layers: each layer adds those whose operands exist.
@@ -429,7 +430,7 @@ pub(crate) fn finish(
     let mut out = vec![key.clone(), "snapshot_date".to_string()];
     out.extend(pipeline.features.iter().map(|f| ident(&f.name)));
     format!(
-        "WITH {}\nSELECT {} FROM ({sql}) ORDER BY {key}",
+        "WITH {}\nSELECT {} FROM ({sql}) ORDER BY {order_prefix}{key}",
         ctes.join(",\n"),
         out.join(", ")
     )

@@ -33,7 +33,7 @@ use std::sync::Arc;
 
 /// Version of the tile file format; part of every tile folder's hash, so a new format is
 /// rebuilt rather than misread.
-const TILE_FORMAT: u32 = 2;
+const TILE_FORMAT: u32 = 3;
 
 /// Rows whose event time is more than this many seconds after their arrival time are
 /// counted as clock problems (common practice: a few minutes of skew between producers).
@@ -132,7 +132,11 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
             _ => columns.push(format!("COUNT(*){only} AS __c{i}")),
         }
         match agg {
-            Aggregation::Sum => columns.push(format!("SUM({e}){only} AS __s{i}")),
+            Aggregation::Sum => {
+                columns.push(format!("SUM({e}){only} AS __s{i}"));
+                // Non-null values summed: tells an empty sum (NULL) from a zero one.
+                columns.push(format!("COUNT({e}){only} AS __n{i}"));
+            }
             Aggregation::Mean => {
                 columns.push(format!("SUM(CAST({e} AS DOUBLE)){only} AS __s{i}"));
                 columns.push(format!("COUNT({e}){only} AS __n{i}"));
@@ -633,7 +637,7 @@ pub fn tiled_snapshot_query(
         layer0.push(feature_column(f, *agg, &v));
     }
     join_source_aggregates(&per_source, &mut ctes, &mut joins);
-    let sql = finish(pipeline, &ctes, &layer0, &joins);
+    let sql = finish(pipeline, &ctes, &layer0, &joins, "");
     crate::sql::SnapshotQuery {
         day,
         cutoff: naive.cutoff,

@@ -7,6 +7,7 @@ use arrow::compute::concat_batches;
 use arrow::datatypes::{DataType, Float64Type};
 use arrow::util::display::array_value_to_string;
 use chrono::NaiveDate;
+use daymark_engine::backfill::{range_query, tile_types};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
 use daymark_engine::{inspect_sources, register_sources, snapshot_query};
 use daymark_spec::Knowledge;
@@ -34,6 +35,19 @@ fn demo_pipeline(world: &Path, out: &Path) -> daymark_spec::Pipeline {
 async fn run(ctx: &datafusion::prelude::SessionContext, sql: &str) -> RecordBatch {
     let batches = ctx.sql(sql).await.unwrap().collect().await.unwrap();
     concat_batches(&batches[0].schema(), &batches).unwrap()
+}
+
+/// The rows of snapshot `d` in the result of a range query.
+fn rows_of_day(all: &RecordBatch, d: NaiveDate) -> RecordBatch {
+    use arrow::datatypes::Date32Type;
+    let epoch = NaiveDate::from_ymd_opt(1970, 1, 1).unwrap();
+    let n = (d - epoch).num_days() as i32;
+    let dates = all
+        .column_by_name("snapshot_date")
+        .unwrap()
+        .as_primitive::<Date32Type>();
+    let mask: arrow::array::BooleanArray = dates.iter().map(|v| Some(v == Some(n))).collect();
+    arrow::compute::filter_record_batch(all, &mask).unwrap()
 }
 
 /// Equal cell by cell; floats to 1e-9 relative (sums are added in another order).
@@ -119,11 +133,20 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
         assert_eq!(s.partitions_reused, 0);
     }
     let mut population = 0;
+    let floats = tile_types(&ctx, &ls).await;
     for mode in [None, Some(Knowledge::EventTime)] {
+        // The whole range as one set-based query (what a backfill runs).
+        let sql = range_query(&pipeline, &ls, days[0], days[days.len() - 1], mode, &floats);
+        let range = run(&ctx, &sql).await;
         for d in &days {
             let naive = run(&ctx, &snapshot_query(&pipeline, *d, mode).sql).await;
             let tiled = run(&ctx, &tiled_snapshot_query(&pipeline, &ls, *d, mode).sql).await;
             assert_same(&naive, &tiled, &format!("{d} {mode:?}"));
+            assert_same(
+                &naive,
+                &rows_of_day(&range, *d),
+                &format!("range {d} {mode:?}"),
+            );
             population += naive.num_rows();
         }
     }

@@ -1,0 +1,663 @@
+//! Set-based backfill: every snapshot day of a range in one DataFusion query over tiles.
+//!
+//! Building a range one query per day costs a fixed overhead per day (planning, listing
+//! and opening tile files) that dominates long backfills. Here each tile row is seen as
+//! the interval of snapshot days on which it is visible: a row of event day `t` and
+//! arrival day `a` is first visible on day `v = t + 1` (event-time) or `v = max(t, a) + 1`
+//! (as-known), and stays inside a `W`-day window up to day `t + W`. Then:
+//!
+//! - additive aggregates (count, sum, mean, active days, distinct count) are running sums
+//!   of +x at the first visible day and -x the day after the last ("difference arrays");
+//!   floating sums are carried as `DECIMAL(38,12)` so that adding and removing a value
+//!   leaves no rounding residue;
+//! - aggregates without a bound (days since first/last event, first/last value over
+//!   `all`, min/max over `all`, the population's current state) are running minima and
+//!   maxima in order of first visibility; first/last values are ranks of the tile rows
+//!   in the naive path's order, looked up afterwards;
+//! - bounded min, max, first and last use a range frame of `W` days over rows that arrive
+//!   on time (`v = t + 1`); the few late rows are expanded to the days they are visible.
+//!
+//! Active days and distinct counts first merge, per key and day or per key and value, the
+//! visibility intervals of all rows (gaps and islands), so that each counts once.
+//! The population is computed the same way into spans of days per key, expanded with
+//! `unnest(range(...))` into the spine of (key, day) rows. Everything is DataFusion SQL of
+//! built-in functions, so the plan can run on a cluster unchanged. The naive per-day query
+//! (`sql.rs`) stays the oracle: `tests/tiled_vs_naive.rs` compares every cell.
+
+use crate::build::{snapshot_path, BuildError, DayReport, DayWriter};
+use crate::sql::{feature_column, finish, ident, literal, KnowledgeOverride};
+use crate::tiles::TileLayout;
+use chrono::NaiveDate;
+use datafusion::arrow::array::{AsArray, RecordBatch};
+use datafusion::arrow::datatypes::{DataType, Date32Type};
+use datafusion::prelude::SessionContext;
+use daymark_spec::{Aggregation, FeatureDef, Knowledge, Pipeline, Population};
+use daymark_store::Location;
+use futures::StreamExt;
+use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::time::Instant;
+
+/// Days since 1970-01-01.
+fn num(d: NaiveDate) -> i64 {
+    (d - NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch")).num_days()
+}
+
+/// Column types of the registered tile tables, by (source, column).
+pub type TileTypes = HashMap<(String, String), DataType>;
+
+/// Reads the column types of every registered tile table (after
+/// [`crate::tiles::prepare`]).
+pub async fn tile_types(ctx: &SessionContext, layouts: &BTreeMap<String, TileLayout>) -> TileTypes {
+    let mut out = HashMap::new();
+    for (name, l) in layouts {
+        if let Ok(t) = ctx.table(l.table()).await {
+            for f in t.schema().fields() {
+                out.insert((name.clone(), f.name().clone()), f.data_type().clone());
+            }
+        }
+    }
+    out
+}
+
+/// A typed SQL NULL (UNION branches need one type per column).
+fn typed_null(t: &DataType) -> String {
+    let sql = match t {
+        DataType::Boolean => "BOOLEAN".to_string(),
+        DataType::Int8 => "TINYINT".to_string(),
+        DataType::Int16 => "SMALLINT".to_string(),
+        DataType::Int32 => "INT".to_string(),
+        DataType::Int64 => "BIGINT".to_string(),
+        DataType::UInt8 => "TINYINT UNSIGNED".to_string(),
+        DataType::UInt16 => "SMALLINT UNSIGNED".to_string(),
+        DataType::UInt32 => "INT UNSIGNED".to_string(),
+        DataType::UInt64 => "BIGINT UNSIGNED".to_string(),
+        DataType::Float32 => "REAL".to_string(),
+        DataType::Float64 => "DOUBLE".to_string(),
+        DataType::Utf8 => "VARCHAR".to_string(),
+        DataType::Date32 => "DATE".to_string(),
+        DataType::Decimal128(p, s) => format!("DECIMAL({p}, {s})"),
+        other => return format!("arrow_cast(NULL, {})", literal(&other.to_string())),
+    };
+    format!("CAST(NULL AS {sql})")
+}
+
+fn is_float(t: Option<&DataType>) -> bool {
+    matches!(
+        t,
+        Some(DataType::Float16 | DataType::Float32 | DataType::Float64)
+    )
+}
+
+/// One branch of the big UNION: named columns (the rest are NULL).
+struct Branch {
+    from: String,
+    day: String,
+    cols: BTreeMap<String, String>,
+}
+
+/// The SQL of all snapshots `first..=last` over tile tables registered by
+/// [`crate::tiles::prepare`], ordered by snapshot date then key. `types` comes from
+/// [`tile_types`].
+pub fn range_query(
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+    types: &TileTypes,
+) -> String {
+    let ty = |source: &str, col: String| types.get(&(source.to_string(), col));
+    // The type of every union column, for typed NULLs.
+    let mut col_types: BTreeMap<String, DataType> = BTreeMap::new();
+    let (n1, nn) = (num(first), num(last));
+    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
+    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
+    let mut ctes: Vec<String> = Vec::new();
+
+    // Visible tile rows of each source, with day numbers `__tn` and first visible day `__vn`.
+    let rows_of = |source: &str| ident(&format!("{source}__v"));
+    for (name, l) in layouts {
+        let Some(read) = reads_last.get(name) else {
+            continue;
+        };
+        let mut conds = vec![
+            "__key IS NOT NULL".to_string(),
+            "__t IS NOT NULL".to_string(),
+            format!("dt <= {}", literal(&read.last_day.to_string())),
+        ];
+        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
+            conds.push(format!("dt >= {}", literal(&f.to_string())));
+        }
+        let tn = "CAST(__t AS BIGINT)";
+        let vn = match read.knowledge {
+            Knowledge::AsKnown => format!(
+                "CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"
+            ),
+            Knowledge::EventTime => format!("{tn} + 1"),
+        };
+        ctes.push(format!(
+            "{} AS (SELECT * FROM (SELECT *, {tn} AS __tn, {vn} AS __vn FROM {} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {nn})",
+            ident(&format!("{name}__r")),
+            ident(&l.table()),
+            conds.join(" AND ")
+        ));
+        // Ranks for first/last values, in the naive path's order.
+        let has_arrival = pipeline.sources[name].spec.arrival_time.is_some();
+        let mut ranks = Vec::new();
+        for (i, f) in pipeline.features.iter().enumerate() {
+            if let FeatureDef::Aggregate { source, agg, .. } = &f.def {
+                if source == name && matches!(agg, Aggregation::First | Aggregation::Last) {
+                    let order = if has_arrival {
+                        format!("__vt{i}, __va{i}, __v{i}")
+                    } else {
+                        format!("__vt{i}, __v{i}")
+                    };
+                    ranks.push(format!(
+                        "CASE WHEN __c{i} > 0 THEN row_number() OVER (PARTITION BY __key ORDER BY {order}) END AS __rk{i}"
+                    ));
+                }
+            }
+        }
+        let extra = if ranks.is_empty() {
+            String::new()
+        } else {
+            format!(", {}", ranks.join(", "))
+        };
+        ctes.push(format!(
+            "{} AS (SELECT *{extra} FROM {})",
+            rows_of(name),
+            ident(&format!("{name}__r"))
+        ));
+    }
+
+    // The population as spans of days per key, then one row per (key, day).
+    let span = |from: &str, next: &str| {
+        format!("GREATEST({from}, {n1}) AS __s, LEAST(COALESCE({next} - 1, {nn}), {nn}) AS __e")
+    };
+    match &pipeline.population {
+        Population::State(s) => {
+            let order = if pipeline.sources[&s.source].spec.arrival_time.is_some() {
+                "__pt, __pa, __ps"
+            } else {
+                "__pt, __ps"
+            };
+            let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
+            ctes.push(format!(
+                "__pop_rows AS (SELECT __key, __vn, __ps, row_number() OVER (PARTITION BY __key ORDER BY {order}) AS __prk FROM {})",
+                rows_of(&s.source)
+            ));
+            ctes.push(
+                "__pop_runs AS (SELECT __key, __vn AS __from, lead(__vn) OVER (PARTITION BY __key ORDER BY __vn) AS __next, MAX(__prk) OVER (PARTITION BY __key ORDER BY __vn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __prk FROM (SELECT __key, __vn, MAX(__prk) AS __prk FROM __pop_rows GROUP BY __key, __vn))".to_string(),
+            );
+            ctes.push(format!(
+                "__pop_spans AS (SELECT r.__key, {} FROM __pop_runs r JOIN __pop_rows x ON x.__key = r.__key AND x.__prk = r.__prk WHERE x.__ps IN ({}))",
+                span("r.__from", "r.__next"),
+                values.join(", ")
+            ));
+        }
+        Population::RecentActivity(a) => {
+            let rows = rows_of(&a.source);
+            let delta = match a.within.days() {
+                Some(w) => format!(
+                    "SELECT __key, __vn AS __dn, __pc AS __x FROM {rows} WHERE __pc > 0 AND __vn <= __tn + {w} UNION ALL SELECT __key, __tn + {w} + 1 AS __dn, -__pc AS __x FROM {rows} WHERE __pc > 0 AND __vn <= __tn + {w}"
+                ),
+                None => format!("SELECT __key, __vn AS __dn, __pc AS __x FROM {rows} WHERE __pc > 0"),
+            };
+            ctes.push(format!(
+                "__pop_runs AS (SELECT __key, __dn AS __from, lead(__dn) OVER (PARTITION BY __key ORDER BY __dn) AS __next, SUM(__x) OVER (PARTITION BY __key ORDER BY __dn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __n FROM (SELECT __key, __dn, SUM(__x) AS __x FROM ({delta}) GROUP BY __key, __dn))"
+            ));
+            ctes.push(format!(
+                "__pop_spans AS (SELECT __key, {} FROM __pop_runs WHERE __n > 0)",
+                span("__from", "__next")
+            ));
+        }
+    }
+    ctes.push(
+        "__spine AS (SELECT __key, unnest(range(__s, __e + 1)) AS __dn FROM __pop_spans WHERE __s <= __e)"
+            .to_string(),
+    );
+
+    // The UNION of contributions: +/- rows, expanded late rows, and the spine (kind 1).
+    let mut branches: Vec<Branch> = Vec::new();
+    let mut windows: Vec<String> = Vec::new();
+    let mut after: Vec<String> = Vec::new(); // columns computed from window results
+    let mut layer0 = vec![
+        format!("p.__key AS {}", ident(&pipeline.file.key)),
+        "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
+    ];
+    let mut joins = Vec::new();
+    let cum =
+        "OVER (PARTITION BY __key ORDER BY __dn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)";
+    let frame = |w: u32| {
+        format!(
+            "OVER (PARTITION BY __key ORDER BY __dn RANGE BETWEEN {} PRECEDING AND CURRENT ROW)",
+            w - 1
+        )
+    };
+    // How rows of one (key, day) combine, per union column.
+    let mut combine: BTreeMap<String, String> = BTreeMap::new();
+
+    for name in layouts.keys() {
+        if !reads_last.contains_key(name) {
+            continue;
+        }
+        let rows = rows_of(name);
+        let mut plus = Branch {
+            from: rows.clone(),
+            day: "__vn".into(),
+            cols: BTreeMap::new(),
+        };
+        // Minus rows per window length of additive features; late rows per window length
+        // of bounded min/max/first/last.
+        let mut minus: BTreeMap<u32, BTreeMap<String, String>> = BTreeMap::new();
+        let mut late: BTreeMap<u32, BTreeMap<String, String>> = BTreeMap::new();
+        for (i, f) in pipeline.features.iter().enumerate() {
+            let FeatureDef::Aggregate {
+                source,
+                agg,
+                window,
+                ..
+            } = &f.def
+            else {
+                continue;
+            };
+            if source != name {
+                continue;
+            }
+            let w = if agg.is_unbounded() {
+                None
+            } else {
+                window.days()
+            };
+            let visible = w.map(|w| format!("__vn <= __tn + {w}"));
+            let when_visible = |x: &str, otherwise: &str| match &visible {
+                Some(v) => format!("CASE WHEN {v} THEN {x} ELSE {otherwise} END"),
+                None => x.to_string(),
+            };
+            let float_sum = is_float(ty(name, format!("__s{i}")));
+            let dec = |x: &str| {
+                if float_sum {
+                    format!("CAST({x} AS DECIMAL(38, 12))")
+                } else {
+                    x.to_string()
+                }
+            };
+            let v = match agg {
+                Aggregation::Count => {
+                    plus.cols
+                        .insert(format!("__xc{i}"), when_visible(&format!("__c{i}"), "0"));
+                    if let Some(w) = w {
+                        minus
+                            .entry(w)
+                            .or_default()
+                            .insert(format!("__xc{i}"), format!("-__c{i}"));
+                    }
+                    windows.push(format!("SUM(__xc{i}) {cum} AS __c{i}"));
+                    format!("p.__c{i}")
+                }
+                Aggregation::Sum | Aggregation::Mean => {
+                    plus.cols.insert(
+                        format!("__xs{i}"),
+                        when_visible(&dec(&format!("__s{i}")), "NULL"),
+                    );
+                    plus.cols
+                        .insert(format!("__xn{i}"), when_visible(&format!("__n{i}"), "0"));
+                    if let Some(w) = w {
+                        let m = minus.entry(w).or_default();
+                        m.insert(format!("__xs{i}"), format!("-{}", dec(&format!("__s{i}"))));
+                        m.insert(format!("__xn{i}"), format!("-__n{i}"));
+                    }
+                    windows.push(format!("SUM(__xs{i}) {cum} AS __s{i}"));
+                    windows.push(format!("SUM(__xn{i}) {cum} AS __n{i}"));
+                    col_types.insert(
+                        format!("__xs{i}"),
+                        if float_sum {
+                            DataType::Decimal128(38, 12)
+                        } else {
+                            ty(name, format!("__s{i}"))
+                                .cloned()
+                                .unwrap_or(DataType::Int64)
+                        },
+                    );
+                    let sum = if float_sum {
+                        format!("CAST(p.__s{i} AS DOUBLE)")
+                    } else {
+                        format!("p.__s{i}")
+                    };
+                    if *agg == Aggregation::Sum {
+                        format!("CASE WHEN p.__n{i} > 0 THEN {sum} END")
+                    } else {
+                        format!("CASE WHEN p.__n{i} > 0 THEN {sum} / CAST(p.__n{i} AS DOUBLE) END")
+                    }
+                }
+                Aggregation::Min | Aggregation::Max | Aggregation::First | Aggregation::Last => {
+                    let (func, comb) = if matches!(agg, Aggregation::Min | Aggregation::First) {
+                        ("MIN", "LEAST")
+                    } else {
+                        ("MAX", "GREATEST")
+                    };
+                    let value = if matches!(agg, Aggregation::Min | Aggregation::Max) {
+                        format!("__m{i}")
+                    } else {
+                        format!("__rk{i}")
+                    };
+                    let t = if matches!(agg, Aggregation::Min | Aggregation::Max) {
+                        ty(name, format!("__m{i}"))
+                            .cloned()
+                            .unwrap_or(DataType::Int64)
+                    } else {
+                        DataType::UInt64
+                    };
+                    col_types.insert(format!("__xm{i}"), t.clone());
+                    col_types.insert(format!("__xl{i}"), t);
+                    match w {
+                        Some(w) => {
+                            plus.cols.insert(
+                                format!("__xm{i}"),
+                                format!("CASE WHEN __vn = __tn + 1 THEN {value} END"),
+                            );
+                            late.entry(w)
+                                .or_default()
+                                .insert(format!("__xl{i}"), value.clone());
+                            windows.push(format!("{func}(__xm{i}) {} AS __m{i}", frame(w)));
+                            // Late rows are grouped per (key, day): their column is the value.
+                            windows.push(format!("__xl{i} AS __l{i}"));
+                            combine.insert(format!("__xl{i}"), func.to_string());
+                            after.push(format!("{comb}(__m{i}, __l{i}) AS __r{i}"));
+                        }
+                        None => {
+                            plus.cols.insert(format!("__xm{i}"), value.clone());
+                            windows.push(format!("{func}(__xm{i}) {cum} AS __m{i}"));
+                            after.push(format!("__m{i} AS __r{i}"));
+                        }
+                    }
+                    if matches!(agg, Aggregation::Min | Aggregation::Max) {
+                        format!("p.__r{i}")
+                    } else {
+                        let vals = ident(&format!("{name}__vals{i}"));
+                        ctes.push(format!(
+                            "{vals} AS (SELECT __key, __rk{i} AS __rk, __v{i} AS __v FROM {rows} WHERE __c{i} > 0)"
+                        ));
+                        let q = format!("__q{i}");
+                        joins.push(format!(
+                            "LEFT JOIN {vals} {q} ON {q}.__key = p.__key AND {q}.__rk = p.__r{i}"
+                        ));
+                        format!("{q}.__v")
+                    }
+                }
+                Aggregation::DaysSinceFirst | Aggregation::DaysSinceLast => {
+                    plus.cols.insert(
+                        format!("__xt{i}"),
+                        format!("CASE WHEN __c{i} > 0 THEN __tn END"),
+                    );
+                    let func = if *agg == Aggregation::DaysSinceFirst {
+                        "MIN"
+                    } else {
+                        "MAX"
+                    };
+                    windows.push(format!("{func}(__xt{i}) {cum} AS __t{i}"));
+                    format!("p.__dn - p.__t{i}")
+                }
+                Aggregation::ActiveDays | Aggregation::CountDistinct => {
+                    // Visibility intervals per (key, day) or (key, value), merged.
+                    let spans = ident(&format!("{name}__u{i}"));
+                    let src = if *agg == Aggregation::ActiveDays {
+                        format!(
+                            "SELECT __key, __tn AS __g, __tn, __vn FROM {rows} WHERE __c{i} > 0"
+                        )
+                    } else {
+                        let l = &layouts[name];
+                        let read = &reads_last[name];
+                        let mut conds = vec![
+                            "__key IS NOT NULL".to_string(),
+                            "__t IS NOT NULL".to_string(),
+                            format!("dt <= {}", literal(&read.last_day.to_string())),
+                        ];
+                        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
+                            conds.push(format!("dt >= {}", literal(&f.to_string())));
+                        }
+                        let tn = "CAST(__t AS BIGINT)";
+                        let vn = match read.knowledge {
+                            Knowledge::AsKnown => format!("CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"),
+                            Knowledge::EventTime => format!("{tn} + 1"),
+                        };
+                        format!(
+                            "SELECT * FROM (SELECT __key, __v AS __g, {tn} AS __tn, {vn} AS __vn FROM {} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {nn}",
+                            ident(&l.distinct_table(i)),
+                            conds.join(" AND ")
+                        )
+                    };
+                    let body = match w {
+                        Some(w) => format!(
+                            "SELECT __key, MIN(__s) AS __s, MAX(__e) AS __e FROM (
+                               SELECT *, SUM(__new) OVER (PARTITION BY __key, __g ORDER BY __s, __e ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __island FROM (
+                                 SELECT *, CASE WHEN MAX(__e) OVER (PARTITION BY __key, __g ORDER BY __s, __e ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) >= __s - 1 THEN 0 ELSE 1 END AS __new
+                                 FROM (SELECT __key, __g, __vn AS __s, __tn + {w} AS __e FROM ({src}) WHERE __vn <= __tn + {w})))
+                             GROUP BY __key, __g, __island"
+                        ),
+                        None => format!("SELECT __key, MIN(__vn) AS __s, CAST(NULL AS BIGINT) AS __e FROM ({src}) GROUP BY __key, __g"),
+                    };
+                    ctes.push(format!("{spans} AS ({body})"));
+                    let col = format!("__xd{i}");
+                    branches.push(Branch {
+                        from: spans.clone(),
+                        day: "__s".into(),
+                        cols: BTreeMap::from([(col.clone(), "CAST(1 AS BIGINT)".to_string())]),
+                    });
+                    if w.is_some() {
+                        branches.push(Branch {
+                            from: format!("{spans} WHERE __e + 1 <= {nn}"),
+                            day: "__e + 1".into(),
+                            cols: BTreeMap::from([(col.clone(), "CAST(-1 AS BIGINT)".to_string())]),
+                        });
+                    }
+                    windows.push(format!("SUM({col}) {cum} AS __d{i}"));
+                    format!("p.__d{i}")
+                }
+            };
+            layer0.push(feature_column(f, *agg, &v));
+        }
+        branches.push(plus);
+        for (w, cols) in minus {
+            branches.push(Branch {
+                from: format!("{rows} WHERE __vn <= __tn + {w} AND __tn + {w} + 1 <= {nn}"),
+                day: format!("__tn + {w} + 1"),
+                cols,
+            });
+        }
+        for (w, cols) in late {
+            // unnest in the day column: one row per day the late row is visible.
+            branches.push(Branch {
+                from: format!(
+                    "{rows} WHERE __vn > __tn + 1 AND __vn <= __tn + {w} AND __vn <= {nn}"
+                ),
+                day: format!("unnest(range(GREATEST(__vn, {n1}), LEAST(__tn + {w}, {nn}) + 1))"),
+                cols,
+            });
+        }
+    }
+    branches.push(Branch {
+        from: "__spine".into(),
+        day: "__dn".into(),
+        cols: BTreeMap::new(),
+    });
+
+    // Every column of the union, in one order for all branches.
+    let all: BTreeSet<String> = branches
+        .iter()
+        .flat_map(|b| b.cols.keys().cloned())
+        .collect();
+    let selects: Vec<String> = branches
+        .iter()
+        .enumerate()
+        .map(|(n, b)| {
+            let kind = if b.from == "__spine" { 1 } else { 0 };
+            let mut cols = vec![
+                "__key".to_string(),
+                format!("CAST({} AS BIGINT) AS __dn", b.day),
+                format!("{kind} AS __k"),
+            ];
+            for c in &all {
+                let v =
+                    b.cols.get(c).cloned().unwrap_or_else(|| {
+                        typed_null(col_types.get(c).unwrap_or(&DataType::Int64))
+                    });
+                cols.push(if n == 0 { format!("{v} AS {c}") } else { v });
+            }
+            format!("SELECT {} FROM {}", cols.join(", "), b.from)
+        })
+        .collect();
+    ctes.push(format!("__u AS ({})", selects.join("\nUNION ALL\n")));
+    // One row per (key, day): contributions of the same day combine first (a vectorised
+    // hash aggregation), so the window functions see far fewer rows. The spine row of a
+    // day sees that day's own contributions, which is what the visibility rules say.
+    for w in &windows {
+        if let (Some(open), Some(close)) = (w.find('('), w.find(')')) {
+            if w.contains(" OVER ") {
+                combine
+                    .entry(w[open + 1..close].to_string())
+                    .or_insert_with(|| w[..open].to_string());
+            }
+        }
+    }
+    let mut g_cols = vec![
+        "__key".to_string(),
+        "__dn".to_string(),
+        "MAX(__k) AS __k".to_string(),
+    ];
+    for c in &all {
+        let f = combine.get(c).map(String::as_str).unwrap_or("SUM");
+        g_cols.push(format!("{f}({c}) AS {c}"));
+    }
+    ctes.push(format!(
+        "__g AS (SELECT {} FROM __u GROUP BY __key, __dn)",
+        g_cols.join(", ")
+    ));
+    let mut w_cols = vec!["__key".to_string(), "__dn".to_string(), "__k".to_string()];
+    w_cols.extend(windows);
+    ctes.push(format!("__w AS (SELECT {} FROM __g)", w_cols.join(", ")));
+    let extra = if after.is_empty() {
+        String::new()
+    } else {
+        format!(", {}", after.join(", "))
+    };
+    ctes.push(format!(
+        "__population AS (SELECT *{extra} FROM __w WHERE __k = 1)"
+    ));
+    finish(pipeline, &ctes, &layer0, &joins, "snapshot_date, ")
+}
+
+/// Builds and publishes every snapshot of `days` (consecutive) from one query, each day
+/// through its own staging file, checks and rename. `on_day` is told of each published
+/// day as it goes. Days whose population is empty get an empty snapshot, as in a
+/// per-day build.
+pub async fn build_range(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    out: &Location,
+    days: &[NaiveDate],
+    mode: KnowledgeOverride,
+    mut on_day: impl FnMut(&DayReport),
+) -> Result<Vec<DayReport>, BuildError> {
+    let (Some(&first), Some(&last)) = (days.first(), days.last()) else {
+        return Ok(Vec::new());
+    };
+    let engine = |day| move |source| BuildError::Engine { day, source };
+    let types = tile_types(ctx, layouts).await;
+    let sql = range_query(pipeline, layouts, first, last, mode, &types);
+    let df = ctx.sql(&sql).await.map_err(engine(first))?;
+    let mut stream = df.execute_stream().await.map_err(engine(first))?;
+    let schema = stream.schema();
+    let date_col = schema
+        .index_of("snapshot_date")
+        .map_err(|e| engine(first)(e.into()))?;
+    let mut reports = Vec::new();
+    let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();
+    let mut current: Option<(DayWriter, Instant)> = None;
+    let epoch = NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch");
+
+    async fn close(
+        w: (DayWriter, Instant),
+        pipeline: &Pipeline,
+        reports: &mut Vec<DayReport>,
+        on_day: &mut impl FnMut(&DayReport),
+    ) -> Result<(), BuildError> {
+        let (writer, t0) = w;
+        let day = writer.day();
+        let (rows, bytes, warnings) = writer.finish(Some(pipeline)).await?;
+        let r = DayReport {
+            day,
+            rows,
+            bytes,
+            seconds: t0.elapsed().as_secs_f64(),
+            warnings,
+        };
+        on_day(&r);
+        reports.push(r);
+        Ok(())
+    }
+
+    let streamed: Result<(), BuildError> = async {
+        while let Some(batch) = stream.next().await {
+            let batch = batch.map_err(engine(first))?;
+            let Some(dates) = batch.column(date_col).as_primitive_opt::<Date32Type>() else {
+                return Err(engine(first)(datafusion::error::DataFusionError::Internal(
+                    "snapshot_date is not a date".into(),
+                )));
+            };
+            let dates = dates.clone();
+            let mut start = 0;
+            while start < batch.num_rows() {
+                let d = epoch + chrono::Duration::days(dates.value(start) as i64);
+                let mut end = start + 1;
+                while end < batch.num_rows() && dates.value(end) == dates.value(start) {
+                    end += 1;
+                }
+                if current.as_ref().map(|(w, _)| w.day()) != Some(d) {
+                    if let Some(w) = current.take() {
+                        close(w, pipeline, &mut reports, &mut on_day).await?;
+                    }
+                    // Days before `d` with no rows at all still get a (empty) snapshot.
+                    while let Some(&p) = pending.peek() {
+                        if p >= d {
+                            break;
+                        }
+                        pending.next();
+                        let w =
+                            DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
+                        close((w, Instant::now()), pipeline, &mut reports, &mut on_day).await?;
+                    }
+                    pending.next();
+                    current = Some((
+                        DayWriter::new(out, snapshot_path(out, mode, d), d, schema.clone())?,
+                        Instant::now(),
+                    ));
+                }
+                let slice: RecordBatch = batch.slice(start, end - start);
+                if let Some((w, _)) = current.as_mut() {
+                    w.tally(pipeline, &slice);
+                    w.write(&slice).await?;
+                }
+                start = end;
+            }
+        }
+        Ok(())
+    }
+    .await;
+    if let Err(e) = streamed {
+        // Nothing half-written: the day being written is dropped from staging.
+        if let Some((w, _)) = current.take() {
+            w.abandon().await;
+        }
+        return Err(e);
+    }
+    if let Some(w) = current.take() {
+        close(w, pipeline, &mut reports, &mut on_day).await?;
+    }
+    for p in pending {
+        let w = DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
+        close((w, Instant::now()), pipeline, &mut reports, &mut on_day).await?;
+    }
+    Ok(reports)
+}
