@@ -79,17 +79,51 @@ pub fn label_path(out: &Location, mode: KnowledgeOverride, day: NaiveDate) -> St
     )
 }
 
+/// The rows of the label source that can decide a label (those matching `ended` or
+/// `resumed`), from day partitions up to `last_partition`: key `__k`, event time `__t`
+/// (UTC), and flags `__end`, `__res`.
+pub fn label_events_sql(
+    pipeline: &Pipeline,
+    label: &LabelSpec,
+    last_partition: NaiveDate,
+) -> String {
+    let src = &pipeline.sources[&label.source];
+    let resumed = label.resumed.as_deref().unwrap_or("false");
+    format!(
+        "SELECT * FROM (
+  SELECT {src_key} AS __k,
+         arrow_cast({ev}, 'Timestamp(Microsecond, Some(\"UTC\"))') AS __t,
+         coalesce(({ended}), false) AS __end,
+         coalesce(({resumed}), false) AS __res
+  FROM {table}
+  WHERE {dt} <= {last} AND {src_key} IS NOT NULL AND {ev} IS NOT NULL
+) WHERE __end OR __res",
+        src_key = ident(&src.key),
+        ev = ident(&src.spec.event_time),
+        ended = label.ended,
+        table = ident(&label.source),
+        dt = ident(&src.spec.day_partition),
+        last = literal(&last_partition.to_string()),
+    )
+}
+
+/// The last day partition the label of `day` needs (one day of slack for any zone).
+pub fn last_partition(t: &LabelTimes) -> NaiveDate {
+    t.matured_at.date_naive() + Duration::days(1)
+}
+
 /// The SQL computing the labels of snapshot `day` for every key of the table
-/// `snapshot_table` (the snapshot of that day), over the label source registered as a
-/// table named after it. Rows are ordered by key, so the same inputs give the same file.
+/// `snapshot_table` (the snapshot of that day), over `events` (a table or parenthesised
+/// query with the columns of [`label_events_sql`]). Rows are ordered by key, so the same
+/// inputs give the same file.
 pub fn label_sql(
     pipeline: &Pipeline,
     label: &LabelSpec,
     day: NaiveDate,
     snapshot_table: &str,
+    events: &str,
 ) -> String {
     let t = label_times(pipeline, label, day);
-    let src = &pipeline.sources[&label.source];
     let tz = pipeline.timezone.name();
     let local = |col: &str| format!("arrow_cast({col}, 'Timestamp(Microsecond, Some(\"{tz}\"))')");
     let shift = pipeline
@@ -102,19 +136,10 @@ pub fn label_sql(
         local("f.__t - INTERVAL '1 microsecond'")
     );
     let epoch_day = (day - NaiveDate::from_ymd_opt(1970, 1, 1).expect("valid date")).num_days();
-    let last_partition = t.matured_at.date_naive() + Duration::days(1);
     let key = ident(&pipeline.file.key);
-    let resumed = label.resumed.as_deref().unwrap_or("false");
     let grace = label.grace.0;
     format!(
-        "WITH ev AS (
-  SELECT {src_key} AS __k,
-         arrow_cast({ev}, 'Timestamp(Microsecond, Some(\"UTC\"))') AS __t,
-         coalesce(({ended}), false) AS __end,
-         coalesce(({resumed}), false) AS __res
-  FROM {table}
-  WHERE {dt} <= {last} AND {src_key} IS NOT NULL AND {ev} IS NOT NULL
-),
+        "WITH ev AS (SELECT * FROM {events} WHERE __t <= {matured}),
 ends AS (
   SELECT __k, __t FROM ev WHERE __end AND __t > {cutoff} AND __t <= {horizon_end}
 ),
@@ -145,12 +170,6 @@ FROM {snap} s
 LEFT JOIN first_end f ON f.__k = s.{key}
 LEFT JOIN before b ON b.__k = s.{key}
 ORDER BY s.{key}",
-        src_key = ident(&src.key),
-        ev = ident(&src.spec.event_time),
-        ended = label.ended,
-        table = ident(&label.source),
-        dt = ident(&src.spec.day_partition),
-        last = literal(&last_partition.to_string()),
         cutoff = ts_literal(t.cutoff),
         horizon_end = ts_literal(t.horizon_end),
         r_local = local("r.__t"),
@@ -233,6 +252,8 @@ pub async fn backfill(
         watermark: wm,
         ..Default::default()
     };
+    // Which days are due, and which of them need writing.
+    let mut due = Vec::new();
     for (day, snap_meta) in &snapshots {
         if until.is_some_and(|u| *day > u) {
             continue;
@@ -245,10 +266,33 @@ pub async fn backfill(
             });
             continue;
         }
-        let path = label_path(out, mode, *day);
         let up_to_date = existing
             .get(day)
             .is_some_and(|m| m.last_modified >= snap_meta.last_modified);
+        due.push((*day, snap_meta, t, up_to_date));
+    }
+    // The rows that decide labels (ends and resumptions: a small share of a change log)
+    // are read from the source once per run, not once per day.
+    let last = due
+        .iter()
+        .filter(|d| !d.3)
+        .map(|d| last_partition(&d.2))
+        .max();
+    if let Some(last) = last {
+        let events = ctx
+            .sql(&label_events_sql(pipeline, label, last))
+            .await
+            .map_err(LabelError::engine(format!("reading {}", label.source)))?
+            .cache()
+            .await
+            .map_err(LabelError::engine(format!("reading {}", label.source)))?;
+        let _ = ctx.deregister_table("__label_events");
+        ctx.register_table("__label_events", events.into_view())
+            .map_err(LabelError::engine(format!("reading {}", label.source)))?;
+    }
+    for (day, snap_meta, t, up_to_date) in due {
+        let day = &day;
+        let path = label_path(out, mode, *day);
         if !up_to_date {
             let _ = ctx.deregister_table("__snapshot");
             ctx.register_parquet(
@@ -258,7 +302,7 @@ pub async fn backfill(
             )
             .await
             .map_err(LabelError::engine(format!("reading snapshot {day}")))?;
-            let sql = label_sql(pipeline, label, *day, "__snapshot");
+            let sql = label_sql(pipeline, label, *day, "__snapshot", "__label_events");
             write_query(ctx, &sql, out, &path, *day, None).await?;
             let _ = ctx.deregister_table("__snapshot");
         }
