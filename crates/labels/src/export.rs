@@ -445,7 +445,7 @@ pub async fn export(
         let sampled = match opts.sample_per_day {
             None => "j".to_string(),
             Some(n) => format!(
-                "(SELECT * FROM (SELECT j.*, row_number() OVER (PARTITION BY snapshot_date ORDER BY sha256(concat(CAST({k} AS VARCHAR), '|', CAST(snapshot_date AS VARCHAR), '|', {seed})), {k}) AS __pick FROM j) WHERE __pick <= {n})",
+                "(SELECT * FROM (SELECT j.*, row_number() OVER (PARTITION BY snapshot_date ORDER BY encode(sha256(concat(CAST({k} AS VARCHAR), '|', CAST(snapshot_date AS VARCHAR), '|', {seed})), 'hex'), {k}) AS __pick FROM j) WHERE __pick <= {n})",
                 seed = literal(&opts.seed.to_string())
             ),
         };
