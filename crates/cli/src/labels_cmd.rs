@@ -118,6 +118,13 @@ pub async fn labels(args: LabelsArgs) -> Result<u8> {
         Some(w) => println!("  {} complete up to {}", label.source, w.describe()),
         None => println!("  {}: no day partitions, nothing can mature", label.source),
     }
+    if result.labeled.is_empty() && result.pending.is_empty() {
+        println!(
+            "  no snapshot built under {}/{}: build snapshots first (`daymark build`)",
+            out.display().trim_end_matches('/'),
+            daymark_engine::build::snapshots_dir(mode)
+        );
+    }
     for l in &result.labeled {
         println!(
             "  {}  {:>7} rows  label rate {:.4}  censored {:>5}  {}",

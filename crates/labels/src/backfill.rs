@@ -259,7 +259,7 @@ pub async fn backfill(
             continue;
         }
         let t = label_times(pipeline, label, *day);
-        if !wm.is_some_and(|w| w >= t.matured_at) {
+        if wm.is_none_or(|w| w < t.matured_at) {
             result.pending.push(PendingDay {
                 day: *day,
                 matured_at: t.matured_at,

@@ -308,7 +308,6 @@ pub async fn export(
             opts.to
         )));
     };
-    let ranges = plan_parts(first, last, &opts.split, embargo).map_err(invalid)?;
 
     let snap_urls: Vec<String> = snapshots
         .iter()
@@ -377,6 +376,7 @@ pub async fn export(
             Some(f.clone())
         }
     };
+    let ranges = plan_parts(first, last, &opts.split, embargo).map_err(invalid)?;
     let cond = filter
         .as_ref()
         .map(|f| format!(" AND ({f})"))
