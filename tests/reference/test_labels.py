@@ -127,7 +127,8 @@ def duckdb_labels(world, snap_file, day, horizon, grace):
               SELECT 1 FROM subs r
               WHERE r.customer_id = e.customer_id AND r.kind IN ('resumed', 'started')
                 AND r.changed_at > e.changed_at
-                AND r.changed_at <= timezone('{TZ}', timezone('{TZ}', e.changed_at) + INTERVAL {grace} DAY))
+                -- wall clocks in the zone: the resumption's local time is at most the end's + grace days
+                AND timezone('{TZ}', r.changed_at) <= timezone('{TZ}', e.changed_at) + INTERVAL {grace} DAY)
           GROUP BY e.customer_id),
         latest AS (
           SELECT customer_id,

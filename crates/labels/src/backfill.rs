@@ -7,8 +7,11 @@
 //!   time `horizon` calendar days later in the pipeline zone), and `matured_at` the cutoff
 //!   of D + horizon + grace.
 //! - An end is a row matching `ended` with `cutoff < t <= horizon_end`. It is cancelled
-//!   when a row matching `resumed` follows in `(t, t + grace]` (`t + grace`: the same wall
-//!   time `grace` calendar days later in the pipeline zone).
+//!   when a row matching `resumed` follows in `(t, t + grace]`, where `t + grace` is the
+//!   same wall time `grace` calendar days later in the pipeline zone: the resumption's
+//!   local wall-clock time is compared with the end's plus `grace` days. (Comparing wall
+//!   clocks never fails when `t + grace` falls into a spring-forward gap, where an instant
+//!   does not exist; in a repeated fall-back hour both occurrences compare equal.)
 //! - `label` is true when the key has an end that is not cancelled; `days_to_event` is then
 //!   k for the first such end, where the end falls in `(cutoff of D+k-1, cutoff of D+k]`
 //!   (1 ..= horizon); null otherwise.
@@ -147,7 +150,7 @@ kept AS (
   SELECT e.__k, e.__t
   FROM ends e LEFT JOIN ev r
     ON r.__k = e.__k AND r.__res AND r.__t > e.__t
-   AND {r_local} <= {e_local} + INTERVAL '{grace} days'
+   AND to_local_time({r_local}) <= to_local_time({e_local}) + INTERVAL '{grace} days'
   GROUP BY e.__k, e.__t
   HAVING count(r.__t) = 0
 ),

@@ -372,12 +372,20 @@ async fn daylight_saving_change_in_the_pipeline_zone() {
             // Resumed 05:30 CDT: within the grace.
             ("p", "2026-03-07T12:00:00Z", "ended"),
             ("p", "2026-03-08T10:30:00Z", "resumed"),
+            // Ended 02:30 CST 03-07; one day later, 02:30 on 03-08, does not exist (the
+            // clocks jump from 02:00 to 03:00). Resumed 03:10 CDT: its wall clock is past
+            // 02:30, so not within the grace.
+            ("r", "2026-03-07T08:30:00Z", "ended"),
+            ("r", "2026-03-08T08:10:00Z", "resumed"),
+            // Resumed 01:59 CST: within it.
+            ("s", "2026-03-07T08:30:00Z", "ended"),
+            ("s", "2026-03-08T07:59:00Z", "resumed"),
             // 00:00 CST on 03-02 is 06:00Z: exactly at the cutoff.
             ("q", "2026-03-02T06:00:00Z", "ended"),
         ],
     );
     let out = root.join("out");
-    write_snapshot(&out, "2026-03-02", &["m", "n", "o", "p", "q"]);
+    write_snapshot(&out, "2026-03-02", &["m", "n", "o", "p", "q", "r", "s"]);
     let p = pipeline(root, "America/Chicago", 7, 1);
     // Complete through dt=2026-03-09 (UTC): watermark 03-10 00:00Z, five hours short.
     mark(&root.join("subs"), "2026-03-01", "2026-03-09");
@@ -399,6 +407,8 @@ async fn daylight_saving_change_in_the_pipeline_zone() {
     expect(&rows, "o", true, Some(6), false);
     expect(&rows, "p", false, None, false);
     expect(&rows, "q", false, None, true);
+    expect(&rows, "r", true, Some(6), false);
+    expect(&rows, "s", false, None, false);
     assert!(rows
         .iter()
         .all(|r| r.matured_at == ts("2026-03-10T05:00:00Z")));
