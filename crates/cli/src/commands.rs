@@ -93,7 +93,7 @@ pub(crate) fn parse_day(text: &str) -> Result<NaiveDate> {
 }
 
 /// Adds what to do when the engine ran out of its memory budget.
-pub(crate) fn memory_hint(e: anyhow::Error) -> anyhow::Error {
+fn memory_hint(e: anyhow::Error) -> anyhow::Error {
     let text = format!("{e:#}");
     if text.contains("Failed to allocate") || text.contains("Resources exhausted") {
         e.context("the engine's memory limit is too small for this step even with spilling to disk: raise --memory-limit")
@@ -338,7 +338,7 @@ pub(crate) fn load(path: &Path) -> Result<Pipeline, u8> {
     })
 }
 
-pub(crate) fn human_bytes(n: u64) -> String {
+fn human_bytes(n: u64) -> String {
     let units = ["B", "KiB", "MiB", "GiB", "TiB"];
     let mut x = n as f64;
     let mut u = 0;
