@@ -64,11 +64,11 @@ impl std::fmt::Display for InvalidInput {
 
 impl std::error::Error for InvalidInput {}
 
-fn invalid(message: String) -> anyhow::Error {
+pub(crate) fn invalid(message: String) -> anyhow::Error {
     InvalidInput(message).into()
 }
 
-fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
+pub(crate) fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     match knowledge {
         None => Ok(None),
         Some("as-known") => Ok(Some(Knowledge::AsKnown)),
@@ -79,7 +79,7 @@ fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     }
 }
 
-fn parse_day(text: &str) -> Result<NaiveDate> {
+pub(crate) fn parse_day(text: &str) -> Result<NaiveDate> {
     let day: NaiveDate = text
         .parse()
         .map_err(|_| invalid(format!("`{text}` is not a date (YYYY-MM-DD)")))?;
@@ -359,7 +359,7 @@ pub struct GenerateArgs {
 }
 
 /// Prints problems found with the data, one a line, after a count.
-fn print_problems(problems: &[Diagnostic]) {
+pub(crate) fn print_problems(problems: &[Diagnostic]) {
     eprintln!(
         "{} problem{}:",
         problems.len(),
@@ -374,7 +374,7 @@ fn print_errors(e: &SpecErrors) {
     eprint!("{e}");
 }
 
-fn load(path: &Path) -> Result<Pipeline, u8> {
+pub(crate) fn load(path: &Path) -> Result<Pipeline, u8> {
     daymark_spec::load_file(path).map_err(|e| {
         print_errors(&e);
         exit::INVALID
@@ -397,7 +397,7 @@ fn human_bytes(n: u64) -> String {
 }
 
 /// Runs the checks that need the data; returns the reports and every problem.
-async fn inspect(
+pub(crate) async fn inspect(
     pipeline: &Pipeline,
     file: &Path,
 ) -> (
@@ -425,6 +425,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
         Err(code) => return Ok(code),
     };
     let (reports, problems, types) = inspect(&pipeline, path).await;
+    let watermarks = daymark_labels::source_watermarks(&pipeline, &reports);
     if as_json {
         let sources: serde_json::Map<String, serde_json::Value> = reports
             .iter()
@@ -442,6 +443,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
                         "bytes": r.listing.bytes(),
                         "rows": r.rows,
                         "knowledge": src.knowledge.as_str(),
+                        "watermark": watermarks.get(name).cloned().flatten().map(|w| w.to_json()),
                         "columns": r.schema.as_ref().map(|s| s.fields().iter().map(|f| json!({"name": f.name(), "type": f.data_type().to_string()})).collect::<Vec<_>>()),
                     }),
                 )
@@ -508,6 +510,10 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
             src.knowledge.as_str(),
             src.spec.dedupe_on.join(", ")
         );
+        match watermarks.get(name).cloned().flatten() {
+            Some(w) => println!("    complete up to {}", w.describe()),
+            None => println!("    complete up to: unknown (no day partitions)"),
+        }
         if let Some(s) = &r.schema {
             let cols: Vec<String> = s
                 .fields()

@@ -1,6 +1,9 @@
 //! The `daymark` command line.
 
 mod commands;
+mod export_cmd;
+mod labels_cmd;
+mod outcomes_cmd;
 mod report;
 
 use clap::{Parser, Subcommand};
@@ -73,6 +76,21 @@ enum Command {
         #[arg(long, default_value_t = 120)]
         days: u32,
     },
+    /// Back-fill the labels of built snapshots whose label window has closed.
+    #[command(
+        after_help = "Example:\n  daymark labels pipelines/demo.yaml\n  daymark labels pipelines/demo.yaml --until 2026-03-31 --json"
+    )]
+    Labels(labels_cmd::LabelsArgs),
+    /// Write a training set: snapshots joined with matured labels, split by date with an embargo.
+    #[command(
+        after_help = "Example:\n  daymark export pipelines/demo.yaml --from 2026-02-01 --to 2026-04-30 --out training --split 0.7,0.15,0.15"
+    )]
+    Export(export_cmd::ExportArgs),
+    /// Measure a model's scores against matured labels, per scoring day.
+    #[command(
+        after_help = "Example:\n  daymark outcomes pipelines/demo.yaml --scores scores.parquet --top-k 100 --min-auc 0.6"
+    )]
+    Outcomes(outcomes_cmd::OutcomesArgs),
     /// Print the JSON Schema of pipeline files (for editors).
     #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
     Schema,
@@ -118,6 +136,9 @@ fn main() -> ExitCode {
                 customers,
                 days,
             } => commands::demo(&dir, customers, days).await,
+            Command::Labels(args) => labels_cmd::labels(args).await,
+            Command::Export(args) => export_cmd::export(args).await,
+            Command::Outcomes(args) => outcomes_cmd::outcomes(args).await,
             Command::Schema => {
                 print!("{}", daymark_spec::json_schema());
                 Ok(exit::OK)

@@ -61,6 +61,10 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     );
     assert!(stdout.contains("features (36):"), "{stdout}");
     assert!(stdout.contains("ok: no problems found"));
+    assert!(
+        stdout.contains("complete up to 2026-04-01T00:00:00Z (end of dt=2026-03-31, the newest partition marked _complete)"),
+        "{stdout}"
+    );
 
     // The JSON report agrees with the files on disk.
     let out = daymark()
@@ -73,6 +77,11 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     let files_on_disk = walk(&world.join("plays")).len() as u64;
     assert_eq!(plays["files"].as_u64().unwrap(), files_on_disk);
     assert_eq!(report["features"].as_array().unwrap().len(), 36);
+    // Every partition 02-20 .. 03-31 carries `_complete`: complete up to the end of 03-31 UTC.
+    assert_eq!(
+        plays["watermark"],
+        serde_json::json!({"at": "2026-04-01T00:00:00Z", "basis": "marker", "day": "2026-03-31"})
+    );
 
     // explain plans the snapshot across the daylight-saving change (2026-03-08 in Chicago).
     let out = daymark()

@@ -51,6 +51,13 @@ pub fn hash_value(v: &Value) -> String {
     hex::encode(Sha256::digest(canonical_json(v).as_bytes()))
 }
 
+fn without_key(mut v: Value, key: &str) -> Value {
+    if let Value::Object(map) = &mut v {
+        map.remove(key);
+    }
+    v
+}
+
 fn to_value<T: serde::Serialize>(t: &T) -> Value {
     serde_json::to_value(t).unwrap_or(Value::Null)
 }
@@ -62,7 +69,8 @@ pub(crate) fn assign_hashes(p: &mut Pipeline) {
     let source_value = |name: &str| -> Value {
         match p.sources.get(name) {
             Some(s) => json!({
-                "spec": to_value(&s.spec),
+                // The lag decides when labels mature, never what a feature or tile holds.
+                "spec": without_key(to_value(&s.spec), "watermark_lag"),
                 "key": s.key,
                 "knowledge": s.knowledge.as_str(),
             }),

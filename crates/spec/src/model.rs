@@ -82,6 +82,11 @@ pub struct SourceSpec {
     /// set, `event-time` otherwise.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub knowledge: Option<Knowledge>,
+    /// Used only when no day partition carries a `_complete` marker: the source is taken to
+    /// be complete up to the end of its newest day partition minus this lag (the watermark
+    /// that decides when labels mature). Default `1d`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub watermark_lag: Option<DayCount>,
 }
 
 fn default_day_partition() -> String {
