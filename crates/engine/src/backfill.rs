@@ -428,6 +428,11 @@ pub fn range_query(
                         )
                     };
                     let body = match w {
+                        // Rows of one (key, day) all leave the window on the same day, so
+                        // their intervals merge into one: from the first visible to t + W.
+                        Some(w) if *agg == Aggregation::ActiveDays => format!(
+                            "SELECT __key, __s, __e FROM (SELECT __key, MIN(__vn) AS __s, MIN(__tn) + {w} AS __e FROM ({src}) GROUP BY __key, __g) WHERE __s <= __e"
+                        ),
                         Some(w) => format!(
                             "SELECT __key, MIN(__s) AS __s, MAX(__e) AS __e FROM (
                                SELECT *, SUM(__new) OVER (PARTITION BY __key, __g ORDER BY __s, __e ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __island FROM (
