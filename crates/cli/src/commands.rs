@@ -64,11 +64,11 @@ impl std::fmt::Display for InvalidInput {
 
 impl std::error::Error for InvalidInput {}
 
-fn invalid(message: String) -> anyhow::Error {
+pub(crate) fn invalid(message: String) -> anyhow::Error {
     InvalidInput(message).into()
 }
 
-fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
+pub(crate) fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     match knowledge {
         None => Ok(None),
         Some("as-known") => Ok(Some(Knowledge::AsKnown)),
@@ -79,7 +79,7 @@ fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     }
 }
 
-fn parse_day(text: &str) -> Result<NaiveDate> {
+pub(crate) fn parse_day(text: &str) -> Result<NaiveDate> {
     let day: NaiveDate = text
         .parse()
         .map_err(|_| invalid(format!("`{text}` is not a date (YYYY-MM-DD)")))?;
@@ -228,7 +228,17 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         } else {
             snapshot_query(&pipeline, *day, mode)
         };
-        match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode, &query.sql).await
+        let staged_checks = daymark_audit::quality::DailyChecks::new(&pipeline, mode);
+        match daymark_engine::build::build_day_checked(
+            &ctx,
+            &pipeline,
+            &out,
+            *day,
+            mode,
+            &query.sql,
+            Some(&staged_checks),
+        )
+        .await
         {
             Ok(r) => {
                 rows += r.rows;
@@ -316,7 +326,7 @@ pub struct GenerateArgs {
 }
 
 /// Prints problems found with the data, one a line, after a count.
-fn print_problems(problems: &[Diagnostic]) {
+pub(crate) fn print_problems(problems: &[Diagnostic]) {
     eprintln!(
         "{} problem{}:",
         problems.len(),
@@ -331,7 +341,7 @@ fn print_errors(e: &SpecErrors) {
     eprint!("{e}");
 }
 
-fn load(path: &Path) -> Result<Pipeline, u8> {
+pub(crate) fn load(path: &Path) -> Result<Pipeline, u8> {
     daymark_spec::load_file(path).map_err(|e| {
         print_errors(&e);
         exit::INVALID
@@ -354,7 +364,7 @@ fn human_bytes(n: u64) -> String {
 }
 
 /// Runs the checks that need the data; returns the reports and every problem.
-async fn inspect(
+pub(crate) async fn inspect(
     pipeline: &Pipeline,
     file: &Path,
 ) -> (

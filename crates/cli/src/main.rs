@@ -1,7 +1,9 @@
 //! The `daymark` command line.
 
+mod audit_cmd;
 mod commands;
 mod report;
+mod report_cmd;
 
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
@@ -73,6 +75,28 @@ enum Command {
         #[arg(long, default_value_t = 120)]
         days: u32,
     },
+    /// Audit built snapshots for leakage: plan, provenance, recomputation, label scan, skew.
+    #[command(
+        after_help = "Example:\n  daymark audit pipelines/demo.yaml\n  daymark audit pipelines/demo.yaml --from 2026-03-01 --to 2026-03-31 --sample 500 --seed 7 --json"
+    )]
+    Audit {
+        #[command(flatten)]
+        args: audit_cmd::AuditArgs,
+        /// Print JSON instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Write one self-contained HTML report (inline SVG charts) on the built outputs.
+    #[command(
+        after_help = "Example:\n  daymark report pipelines/demo.yaml --out report.html"
+    )]
+    Report {
+        #[command(flatten)]
+        args: audit_cmd::AuditArgs,
+        /// The HTML file to write (a local path).
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Print the JSON Schema of pipeline files (for editors).
     #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
     Schema,
@@ -118,6 +142,8 @@ fn main() -> ExitCode {
                 customers,
                 days,
             } => commands::demo(&dir, customers, days).await,
+            Command::Audit { args, json } => audit_cmd::run(args, json).await,
+            Command::Report { args, out } => report_cmd::run(args, &out).await,
             Command::Schema => {
                 print!("{}", daymark_spec::json_schema());
                 Ok(exit::OK)

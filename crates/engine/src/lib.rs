@@ -7,10 +7,12 @@
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
+//! - [`provenance`]: per source, the latest event and arrival time a snapshot read.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
 pub mod build;
 pub mod check;
+pub mod provenance;
 pub mod session;
 pub mod sources;
 pub mod sql;

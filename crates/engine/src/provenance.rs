@@ -1,0 +1,133 @@
+//! Provenance of a snapshot: per source, the latest event time and the latest arrival time
+//! among the rows the snapshot was allowed to read.
+//!
+//! It is computed by one small aggregate query per source over the same raw rows and the
+//! same cutoff and knowledge filters as the naive snapshot query ([`crate::sql`]), and is
+//! written into the snapshot's Parquet footer (key-value metadata under
+//! [`METADATA_KEY`]) so that it is published in the same rename as the data. The audit
+//! checks that both times are before the cutoff.
+//!
+//! Limit: the lower window bound is the first day partition read, not the exact window
+//! start, so when a source has no row inside a window the latest event may be an older
+//! one that no feature used. That never hides a row read past the cutoff.
+
+use crate::sql::{ident, literal, snapshot_query, ts_literal, KnowledgeOverride};
+use arrow::array::{Array, AsArray};
+use arrow::datatypes::{Int64Type, TimestampMicrosecondType};
+use chrono::{DateTime, NaiveDate, Utc};
+use datafusion::error::Result;
+use datafusion::prelude::SessionContext;
+use daymark_spec::{Knowledge, Pipeline};
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+/// Key of the snapshot file's key-value metadata holding the provenance (JSON).
+pub const METADATA_KEY: &str = "daymark.provenance";
+
+/// What one source contributed to a snapshot.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SourceProvenance {
+    /// Latest event time among the rows read, RFC 3339 UTC (`None`: no row).
+    pub max_event_time: Option<String>,
+    /// Latest arrival time among the rows read, RFC 3339 UTC (`None`: no row or no arrival
+    /// column).
+    pub max_arrival_time: Option<String>,
+    /// Rows that passed the cutoff and knowledge filters (before de-duplication).
+    pub rows: i64,
+    /// Knowledge mode the source was read in.
+    pub knowledge: Knowledge,
+}
+
+/// The provenance of one snapshot.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Provenance {
+    /// The snapshot day (YYYY-MM-DD).
+    pub day: String,
+    /// Its cutoff, RFC 3339 UTC.
+    pub cutoff: String,
+    /// Per source read.
+    pub sources: BTreeMap<String, SourceProvenance>,
+}
+
+/// The aggregate query of one source (over the table registered under its name).
+pub fn source_sql(
+    pipeline: &Pipeline,
+    source: &str,
+    read: &crate::sql::SourceRead,
+) -> Option<String> {
+    let src = pipeline.sources.get(source)?;
+    let dt = ident(&src.spec.day_partition);
+    let ev = ident(&src.spec.event_time);
+    let mut conds = vec![format!("{dt} <= {}", literal(&read.last_day.to_string()))];
+    if let Some(d) = read.first_day {
+        conds.push(format!("{dt} >= {}", literal(&d.to_string())));
+    }
+    conds.push(format!("{ev} < {}", ts_literal(read.until)));
+    if let (Knowledge::AsKnown, Some(a)) = (read.knowledge, &src.spec.arrival_time) {
+        conds.push(format!("{} < {}", ident(a), ts_literal(read.until)));
+    }
+    conds.push(format!("{} IS NOT NULL", ident(&src.key)));
+    let ts = |c: &str| format!("arrow_cast(MAX({c}), 'Timestamp(Microsecond, Some(\"UTC\"))')");
+    let arrival = match &src.spec.arrival_time {
+        Some(a) => ts(&ident(a)),
+        None => "arrow_cast(NULL, 'Timestamp(Microsecond, Some(\"UTC\"))')".to_string(),
+    };
+    Some(format!(
+        "SELECT {} AS max_event, {arrival} AS max_arrival, COUNT(*) AS n FROM {} WHERE {}",
+        ts(&ev),
+        ident(source),
+        conds.join(" AND ")
+    ))
+}
+
+/// Computes the provenance of snapshot `day` (sources must be registered as tables).
+pub async fn provenance(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+) -> Result<Provenance> {
+    let q = snapshot_query(pipeline, day, mode);
+    let mut sources = BTreeMap::new();
+    for (name, read) in &q.reads {
+        let Some(sql) = source_sql(pipeline, name, read) else {
+            continue;
+        };
+        let batches = ctx.sql(&sql).await?.collect().await?;
+        let mut p = SourceProvenance {
+            max_event_time: None,
+            max_arrival_time: None,
+            rows: 0,
+            knowledge: read.knowledge,
+        };
+        for b in batches.iter().filter(|b| b.num_rows() > 0) {
+            let time = |i: usize| {
+                let a = b.column(i).as_primitive::<TimestampMicrosecondType>();
+                (!a.is_null(0))
+                    .then(|| DateTime::from_timestamp_micros(a.value(0)))?
+                    .map(rfc3339)
+            };
+            p.max_event_time = time(0);
+            p.max_arrival_time = time(1);
+            p.rows = b.column(2).as_primitive::<Int64Type>().value(0);
+        }
+        sources.insert(name.clone(), p);
+    }
+    Ok(Provenance {
+        day: day.to_string(),
+        cutoff: rfc3339(q.cutoff),
+        sources,
+    })
+}
+
+/// An instant as RFC 3339 UTC with microseconds, the form used in provenance.
+pub fn rfc3339(t: DateTime<Utc>) -> String {
+    t.format("%Y-%m-%dT%H:%M:%S%.6fZ").to_string()
+}
+
+/// Parses an instant written by [`rfc3339`].
+pub fn parse_instant(text: &str) -> Option<DateTime<Utc>> {
+    DateTime::parse_from_rfc3339(text)
+        .ok()
+        .map(|t| t.with_timezone(&Utc))
+}
