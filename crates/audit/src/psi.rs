@@ -83,12 +83,25 @@ pub fn quantiles_sql(table: &str, filter: &str, features: &[String]) -> String {
     )
 }
 
-/// SQL of one query returning the count of every bin of every feature (columns
-/// `b{feature index}_{bin}`) over `table` rows matching `filter`.
-pub fn bin_counts_sql(table: &str, filter: &str, features: &[(String, Vec<f64>)]) -> String {
-    let mut cols = Vec::new();
+/// SQL of one query returning, per side (`__side` 0: reference rows of `ref_table`
+/// matching `ref_filter`, 1: current rows of `cur_table` matching `cur_filter`), the count
+/// of every bin of every feature (columns `b{feature index}_{bin}` after `__side`).
+pub fn bin_counts_sql(
+    (ref_table, ref_filter): (&str, &str),
+    (cur_table, cur_filter): (&str, &str),
+    features: &[(String, Vec<f64>)],
+) -> String {
+    use daymark_engine::sql::ident;
+    let names: Vec<String> = features.iter().map(|(f, _)| ident(f)).collect();
+    let from = format!(
+        "(SELECT 0 AS __side, {c} FROM {} WHERE {ref_filter} UNION ALL SELECT 1 AS __side, {c} FROM {} WHERE {cur_filter})",
+        ident(ref_table),
+        ident(cur_table),
+        c = names.join(", ")
+    );
+    let mut cols = vec!["__side".to_string()];
     for (i, (f, e)) in features.iter().enumerate() {
-        let v = format!("CAST({} AS DOUBLE)", daymark_engine::sql::ident(f));
+        let v = format!("CAST({} AS DOUBLE)", ident(f));
         cols.push(format!("COUNT(*) FILTER (WHERE {v} IS NULL) AS b{i}_0"));
         for j in 0..=e.len() {
             let mut c = vec![format!("{v} IS NOT NULL")];
@@ -105,11 +118,7 @@ pub fn bin_counts_sql(table: &str, filter: &str, features: &[(String, Vec<f64>)]
             ));
         }
     }
-    format!(
-        "SELECT {} FROM {} WHERE {filter}",
-        cols.join(", "),
-        daymark_engine::sql::ident(table)
-    )
+    format!("SELECT {} FROM {from} GROUP BY __side", cols.join(", "))
 }
 
 #[cfg(test)]

@@ -50,28 +50,24 @@ pub async fn psi_between(
             (f.clone(), psi::edges(qs))
         })
         .collect();
-    let counts = |batches: &[arrow::array::RecordBatch]| -> Vec<u64> {
-        first_row(batches)
-            .into_iter()
-            .map(|v| v.unwrap_or(0.0) as u64)
-            .collect()
-    };
-    let r = counts(
-        &collect(
-            ctx,
-            &psi::bin_counts_sql(ref_table, ref_filter, &binned),
-            "reference bins",
-        )
-        .await?,
-    );
-    let c = counts(
-        &collect(
-            ctx,
-            &psi::bin_counts_sql(cur_table, cur_filter, &binned),
-            "current bins",
-        )
-        .await?,
-    );
+    let batches = collect(
+        ctx,
+        &psi::bin_counts_sql((ref_table, ref_filter), (cur_table, cur_filter), &binned),
+        "bin counts",
+    )
+    .await?;
+    let (mut r, mut c) = (Vec::new(), Vec::new());
+    for b in &batches {
+        for row in 0..b.num_rows() {
+            let counts: Vec<u64> = (1..b.num_columns())
+                .map(|i| tables::value_f64(b.column(i), row).unwrap_or(0.0) as u64)
+                .collect();
+            match tables::value_f64(b.column(0), row) {
+                Some(0.0) => r = counts,
+                _ => c = counts,
+            }
+        }
+    }
     let mut out = BTreeMap::new();
     let mut at = 0;
     for (f, e) in &binned {

@@ -236,6 +236,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             *day,
             mode,
             &query.sql,
+            tiled.then_some(&layouts),
             Some(&staged_checks),
         )
         .await

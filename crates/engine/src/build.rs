@@ -377,11 +377,13 @@ pub async fn build_day(
     mode: KnowledgeOverride,
     sql: &str,
 ) -> Result<DayReport, BuildError> {
-    build_day_checked(ctx, pipeline, out, day, mode, sql, None).await
+    build_day_checked(ctx, pipeline, out, day, mode, sql, None, None).await
 }
 
 /// [`build_day`] that also records the snapshot's provenance in its footer (see
-/// [`crate::provenance`]) and runs `staged_check` on the staged file before publishing.
+/// [`crate::provenance`]; from the tiles when `tiles` is given, else from the raw
+/// sources) and runs `staged_check` on the staged file before publishing.
+#[allow(clippy::too_many_arguments)]
 pub async fn build_day_checked(
     ctx: &SessionContext,
     pipeline: &Pipeline,
@@ -389,11 +391,12 @@ pub async fn build_day_checked(
     day: NaiveDate,
     mode: KnowledgeOverride,
     sql: &str,
+    tiles: Option<&BTreeMap<String, crate::tiles::TileLayout>>,
     staged_check: Option<&dyn StagedCheck>,
 ) -> Result<DayReport, BuildError> {
     let t0 = Instant::now();
     let path = snapshot_path(out, mode, day);
-    let prov = crate::provenance::provenance(ctx, pipeline, day, mode)
+    let prov = crate::provenance::provenance(ctx, pipeline, day, mode, tiles)
         .await
         .map_err(|source| BuildError::Engine { day, source })?;
     let metadata = vec![(

@@ -2,14 +2,16 @@
 //! among the rows the snapshot was allowed to read.
 //!
 //! It is computed by one small aggregate query per source over the same raw rows and the
-//! same cutoff and knowledge filters as the naive snapshot query ([`crate::sql`]), and is
+//! same cutoff and knowledge filters as the naive snapshot query ([`crate::sql`]), or, for
+//! tiled builds, over the tile rows the snapshot combines (tiles keep each row's latest
+//! event and arrival time), and is
 //! written into the snapshot's Parquet footer (key-value metadata under
 //! [`METADATA_KEY`]) so that it is published in the same rename as the data. The audit
 //! checks that both times are before the cutoff.
 //!
-//! Limit: the lower window bound is the first day partition read, not the exact window
-//! start, so when a source has no row inside a window the latest event may be an older
-//! one that no feature used. That never hides a row read past the cutoff.
+//! Limit: the lower bound is the first day partition read, not the exact window start, so
+//! when a source has no row inside a window the latest event may be an older one that no
+//! feature used. That never hides a row read past the cutoff.
 
 use crate::sql::{ident, literal, snapshot_query, ts_literal, KnowledgeOverride};
 use arrow::array::{Array, AsArray};
@@ -80,17 +82,61 @@ pub fn source_sql(
     ))
 }
 
-/// Computes the provenance of snapshot `day` (sources must be registered as tables).
+/// The same aggregate over the tile rows a tiled snapshot of `day` reads: tiles keep the
+/// latest event and arrival time of each (key, event day, arrival day) row (`__mev`,
+/// `__mar`), and days run from one cutoff to the next, so the day filters select exactly
+/// the rows the cutoff filters would.
+pub fn tiles_sql(
+    pipeline: &Pipeline,
+    layout: &crate::tiles::TileLayout,
+    read: &crate::sql::SourceRead,
+    day: NaiveDate,
+) -> Option<String> {
+    let src = pipeline.sources.get(&layout.source)?;
+    let date = |d: NaiveDate| format!("CAST({} AS DATE)", literal(&d.to_string()));
+    let last = day.pred_opt()?;
+    let mut conds = vec![
+        "__key IS NOT NULL".to_string(),
+        format!("dt <= {}", literal(&read.last_day.to_string())),
+        format!("__t <= {}", date(last)),
+    ];
+    if let Some(f) = read.first_day {
+        conds.push(format!("dt >= {}", literal(&f.to_string())));
+    }
+    if read.knowledge == Knowledge::AsKnown {
+        conds.push(format!("__a <= {}", date(last)));
+    }
+    let ts = |c: &str| format!("arrow_cast(MAX({c}), 'Timestamp(Microsecond, Some(\"UTC\"))')");
+    let arrival = if src.spec.arrival_time.is_some() {
+        ts("__mar")
+    } else {
+        "arrow_cast(NULL, 'Timestamp(Microsecond, Some(\"UTC\"))')".to_string()
+    };
+    Some(format!(
+        "SELECT {} AS max_event, {arrival} AS max_arrival, CAST(SUM(__rows) AS BIGINT) AS n FROM {} WHERE {}",
+        ts("__mev"),
+        ident(&layout.table()),
+        conds.join(" AND ")
+    ))
+}
+
+/// Computes the provenance of snapshot `day`: from the raw sources (registered as tables)
+/// or, with `tiles`, from the tiles (registered by `tiles::register_tiles`).
 pub async fn provenance(
     ctx: &SessionContext,
     pipeline: &Pipeline,
     day: NaiveDate,
     mode: KnowledgeOverride,
+    tiles: Option<&BTreeMap<String, crate::tiles::TileLayout>>,
 ) -> Result<Provenance> {
     let q = snapshot_query(pipeline, day, mode);
     let mut sources = BTreeMap::new();
     for (name, read) in &q.reads {
-        let Some(sql) = source_sql(pipeline, name, read) else {
+        let sql = match tiles.map(|t| t.get(name)) {
+            Some(Some(layout)) => tiles_sql(pipeline, layout, read, day),
+            _ => source_sql(pipeline, name, read),
+        };
+        let Some(sql) = sql else {
             continue;
         };
         let batches = ctx.sql(&sql).await?.collect().await?;
