@@ -275,3 +275,68 @@ def test_failing_build_check_publishes_nothing(daymark, small_world, clean, chec
     assert expected in p.stderr
     assert not (clean["out"] / "snapshots" / f"dt={day}").exists()
     assert not any((clean["out"] / "_staging").glob("*")) if (clean["out"] / "_staging").exists() else True
+
+
+CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+                  "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                  "--enable-logging=stderr", "--v=0", "--window-size=1280,4000"]
+
+PROBE = """<script>
+window.__errors = [];
+window.addEventListener('error', e => window.__errors.push(String(e.message)));
+window.addEventListener('load', () => {
+  const charts = [...document.querySelectorAll('svg.chart')].map(s => {
+    const b = s.getBBox();
+    return {label: s.getAttribute('aria-label'), shapes: s.querySelectorAll('rect,polyline,circle,line').length,
+            width: b.width, height: b.height};
+  });
+  const pre = document.createElement('pre');
+  pre.id = 'probe';
+  pre.textContent = JSON.stringify({charts, errors: window.__errors});
+  document.body.appendChild(pre);
+});
+</script></body>"""
+
+
+def chromium(args, tmp_path):
+    exe = shutil.which("chromium")
+    assert exe, "chromium is missing: tests/run.sh installs the Debian package"
+    profile = tmp_path / f"profile-{len(list(tmp_path.iterdir()))}"
+    return subprocess.run([exe, *CHROMIUM_FLAGS, f"--user-data-dir={profile}", *args],
+                          capture_output=True, text=True, timeout=300)
+
+
+def test_report_renders_in_headless_chromium(daymark, clean, tmp_path):
+    html = tmp_path / "report.html"
+    p = run(daymark, "report", clean["pipeline"], "--outputs", clean["out"], "--out", html,
+            "--sample", 10, "--sample-days", 1)
+    charts = int(re.search(r"\((\d+) charts", p.stdout).group(1))
+    text = html.read_text()
+    # Self-contained: no scripts, no links, nothing fetched (the only URL is the SVG namespace).
+    assert "<script" not in text and "<link" not in text
+    assert set(re.findall(r"https?://[^\"' ]+", text)) == {"http://www.w3.org/2000/svg"}
+    for title in ["Population", "Label rate", "PSI against the previous day", "ROC AUC",
+                  "Share of null values", "Pearson correlation"]:
+        assert title in text, title
+    # Screenshot of the report as written; no console messages at all.
+    shot = tmp_path / "report.png"
+    s = chromium([f"--screenshot={shot}", html.as_uri()], tmp_path)
+    assert shot.exists(), s.stderr
+    png = shot.read_bytes()
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    assert int.from_bytes(png[16:20], "big") == 1280 and int.from_bytes(png[20:24], "big") == 4000
+    assert len(png) > 50_000  # a blank page compresses to a few kilobytes
+    assert "CONSOLE" not in s.stderr, s.stderr
+    # Every chart rendered: a probe script added to a copy measures each SVG after layout.
+    probed = tmp_path / "probed.html"
+    probed.write_text(text.replace("</body>", PROBE))
+    d = chromium(["--dump-dom", probed.as_uri()], tmp_path)
+    found = re.search(r'<pre id="probe">(.*?)</pre>', d.stdout, re.S)
+    assert found, d.stdout[-2000:] + d.stderr[-2000:]
+    probe = json.loads(found.group(1).replace("&quot;", '"').replace("&amp;", "&")
+                       .replace("&lt;", "<").replace("&gt;", ">"))
+    assert probe["errors"] == []
+    assert len(probe["charts"]) == charts >= 30
+    for c in probe["charts"]:
+        assert c["shapes"] > 0 and c["width"] > 0 and c["height"] > 0, c
+    assert "CONSOLE" not in d.stderr, d.stderr

@@ -113,7 +113,13 @@ impl AuditOutcome {
     }
 }
 
-fn result(number: u8, name: &'static str, failed: bool, summary: String, evidence: Value) -> CheckResult {
+fn result(
+    number: u8,
+    name: &'static str,
+    failed: bool,
+    summary: String,
+    evidence: Value,
+) -> CheckResult {
     CheckResult {
         number,
         name,
@@ -243,12 +249,13 @@ pub async fn provenance_check(
         let Some(file) = published.get(day).and_then(|f| f.first()) else {
             continue;
         };
-        let footer = daymark_store::read_footer(out, file)
-            .await
-            .map_err(|e| AuditError::Store {
-                path: file.path.to_string(),
-                reason: e.to_string(),
-            })?;
+        let footer =
+            daymark_store::read_footer(out, file)
+                .await
+                .map_err(|e| AuditError::Store {
+                    path: file.path.to_string(),
+                    reason: e.to_string(),
+                })?;
         let Some(text) = footer.schema.metadata().get(METADATA_KEY) else {
             missing.push(day.to_string());
             continue;
@@ -268,9 +275,11 @@ pub async fn provenance_check(
             let event_late = late(&s.max_event_time);
             let arrival_late = s.knowledge == Knowledge::AsKnown && late(&s.max_arrival_time);
             if event_late || arrival_late {
-                problems.push(json!({"day": day.to_string(), "source": source, "cutoff": p.cutoff,
+                problems.push(
+                    json!({"day": day.to_string(), "source": source, "cutoff": p.cutoff,
                     "max_event_time": s.max_event_time, "max_arrival_time": s.max_arrival_time,
-                    "knowledge": s.knowledge.as_str()}));
+                    "knowledge": s.knowledge.as_str()}),
+                );
             }
         }
         latest.push(json!({"day": day.to_string(), "provenance": p}));
@@ -321,7 +330,9 @@ fn cells_match(a: &dyn arrow::array::Array, b: &dyn arrow::array::Array, row: us
         let (x, y) = (value_f64(a, row), value_f64(b, row));
         return match (x, y) {
             (Some(x), Some(y)) => {
-                x == y || (x - y).abs() <= FLOAT_TOLERANCE * x.abs().max(y.abs()) || (x.is_nan() && y.is_nan())
+                x == y
+                    || (x - y).abs() <= FLOAT_TOLERANCE * x.abs().max(y.abs())
+                    || (x.is_nan() && y.is_nan())
             }
             _ => false,
         };
@@ -393,13 +404,17 @@ async fn recompute_check(
         let c = tables::first_row(&counts);
         let (n, p) = (c.first().copied().flatten(), c.get(1).copied().flatten());
         if n != p {
-            mismatches.push(json!({"day": ds, "what": "population size", "published": p, "naive": n}));
+            mismatches
+                .push(json!({"day": ds, "what": "population size", "published": p, "naive": n}));
         }
         population.push(json!({"day": ds, "published": p, "naive": n, "keys_sampled": keys.len()}));
         if keys.is_empty() {
             continue;
         }
-        let mut cols = vec![format!("CAST(p.{key} AS VARCHAR) AS __k"), format!("n.{key} IS NULL AS __missing")];
+        let mut cols = vec![
+            format!("CAST(p.{key} AS VARCHAR) AS __k"),
+            format!("n.{key} IS NULL AS __missing"),
+        ];
         for (i, f) in pipeline.features.iter().enumerate() {
             cols.push(format!("p.{} AS p{i}", ident(&f.name)));
             cols.push(format!("n.{} AS n{i}", ident(&f.name)));
@@ -477,7 +492,12 @@ pub async fn register_scan(
         return Ok(None);
     };
     let mut cols = vec![format!("s.{key}"), "s.snapshot_date".to_string()];
-    cols.extend(pipeline.features.iter().map(|f| format!("s.{}", ident(&f.name))));
+    cols.extend(
+        pipeline
+            .features
+            .iter()
+            .map(|f| format!("s.{}", ident(&f.name))),
+    );
     let sql = format!(
         "SELECT {}, CASE WHEN l.{y} THEN 1 ELSE 0 END AS __y FROM __audit_snap s JOIN __audit_labels l ON s.{key} = l.{key} AND s.snapshot_date = l.snapshot_date WHERE l.{y} IS NOT NULL AND {}",
         cols.join(", "),
@@ -490,7 +510,14 @@ pub async fn register_scan(
     let _ = ctx.deregister_table("__audit_scan");
     ctx.register_table("__audit_scan", view.into_view())
         .map_err(engine("joining snapshots and labels"))?;
-    let n = tables::count(&collect(ctx, "SELECT COUNT(*) FROM __audit_scan", "counting matured rows").await?);
+    let n = tables::count(
+        &collect(
+            ctx,
+            "SELECT COUNT(*) FROM __audit_scan",
+            "counting matured rows",
+        )
+        .await?,
+    );
     Ok(Some(n))
 }
 
@@ -501,7 +528,14 @@ async fn label_scan(
     out: &Location,
     days: &[NaiveDate],
     opts: &AuditOptions,
-) -> Result<(CheckResult, Option<Analysis>, Vec<(String, String, f64, f64)>), AuditError> {
+) -> Result<
+    (
+        CheckResult,
+        Option<Analysis>,
+        Vec<(String, String, f64, f64)>,
+    ),
+    AuditError,
+> {
     let skipped = |summary: &str| CheckResult {
         number: 4,
         name: "label scan",
@@ -537,7 +571,11 @@ async fn label_scan(
             opts.auc_margin,
             flagged
                 .iter()
-                .map(|f| format!("{} {:.3}", f["feature"].as_str().unwrap_or(""), f["auc"].as_f64().unwrap_or(0.0)))
+                .map(|f| format!(
+                    "{} {:.3}",
+                    f["feature"].as_str().unwrap_or(""),
+                    f["auc"].as_f64().unwrap_or(0.0)
+                ))
                 .collect::<Vec<_>>()
                 .join(", ")
         )
@@ -551,7 +589,8 @@ async fn label_scan(
             "{n} matured row(s), {} positive; no feature's AUC within {} of 0 or 1{}",
             analysis.positives,
             opts.auc_margin,
-            best.map(|(f, a)| format!(" (strongest {f} {a:.3})")).unwrap_or_default()
+            best.map(|(f, a)| format!(" (strongest {f} {a:.3})"))
+                .unwrap_or_default()
         )
     };
     let check = result(
@@ -576,7 +615,10 @@ async fn skew_check(
     let mut per_day = Vec::new();
     let mut worst: (f64, String) = (0.0, String::new());
     for day in days {
-        for (name, mode) in [("__audit_ak", Knowledge::AsKnown), ("__audit_et", Knowledge::EventTime)] {
+        for (name, mode) in [
+            ("__audit_ak", Knowledge::AsKnown),
+            ("__audit_et", Knowledge::EventTime),
+        ] {
             let q = snapshot_query(pipeline, *day, Some(mode));
             let df = ctx
                 .sql(&q.sql)
@@ -618,8 +660,10 @@ async fn skew_check(
                 worst = (share, format!("{} on {day}", f.name));
             }
         }
-        per_day.push(json!({"day": day.to_string(), "rows": n, "rows_in_one_mode_only": only,
-            "row_share": row_share, "feature_value_share": features}));
+        per_day.push(
+            json!({"day": day.to_string(), "rows": n, "rows_in_one_mode_only": only,
+            "row_share": row_share, "feature_value_share": features}),
+        );
     }
     let _ = ctx.deregister_table("__audit_ak");
     let _ = ctx.deregister_table("__audit_et");
@@ -628,7 +672,11 @@ async fn skew_check(
         "{} day(s): largest share differing between as-known and event-time {:.4}{} (limit {})",
         days.len(),
         worst.0,
-        if worst.1.is_empty() { String::new() } else { format!(" ({})", worst.1) },
+        if worst.1.is_empty() {
+            String::new()
+        } else {
+            format!(" ({})", worst.1)
+        },
         opts.max_skew
     );
     Ok(result(

@@ -43,7 +43,9 @@ pub enum AuditError {
 }
 
 /// Adds context to an engine error.
-pub(crate) fn engine(context: impl Into<String>) -> impl FnOnce(datafusion::error::DataFusionError) -> AuditError {
+pub(crate) fn engine(
+    context: impl Into<String>,
+) -> impl FnOnce(datafusion::error::DataFusionError) -> AuditError {
     let context = context.into();
     move |source| AuditError::Engine { context, source }
 }

@@ -57,8 +57,16 @@ pub fn psi(reference: &[u64], current: &[u64]) -> Option<f64> {
         if *r == 0 && *c == 0 {
             continue;
         }
-        let e = if *r == 0 { EMPTY_BIN_SHARE } else { *r as f64 / nr };
-        let a = if *c == 0 { EMPTY_BIN_SHARE } else { *c as f64 / nc };
+        let e = if *r == 0 {
+            EMPTY_BIN_SHARE
+        } else {
+            *r as f64 / nr
+        };
+        let a = if *c == 0 {
+            EMPTY_BIN_SHARE
+        } else {
+            *c as f64 / nc
+        };
         total += (a - e) * (a / e).ln();
     }
     Some(total)

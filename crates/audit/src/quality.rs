@@ -184,16 +184,23 @@ impl DailyChecks {
                 }
             }
             for (what, filter) in comparisons {
-                let values = psi_between(ctx, PUBLISHED, &filter, STAGED, "TRUE", &features).await?;
+                let values =
+                    psi_between(ctx, PUBLISHED, &filter, STAGED, "TRUE", &features).await?;
                 for (f, v) in values {
                     if v >= drift.fail {
                         judge(
-                            format!("drift: {f} PSI {v:.3} against {what} (fails at {})", drift.fail),
+                            format!(
+                                "drift: {f} PSI {v:.3} against {what} (fails at {})",
+                                drift.fail
+                            ),
                             true,
                         );
                     } else if v >= drift.warn {
                         judge(
-                            format!("drift: {f} PSI {v:.3} against {what} (warns at {})", drift.warn),
+                            format!(
+                                "drift: {f} PSI {v:.3} against {what} (warns at {})",
+                                drift.warn
+                            ),
                             false,
                         );
                     }

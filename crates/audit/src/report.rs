@@ -68,27 +68,70 @@ pub mod svg {
         let n = x.len().max(2) as f64 - 1.0;
         let px = |i: usize| l + (w - l - r) * i as f64 / n;
         let py = |v: f64| t + (h - t - b) * (1.0 - (v - lo) / (hi - lo));
-        let mut s = format!(r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#, esc(title));
-        let _ = write!(s, r#"<text x="{l}" y="16" class="title">{}</text>"#, esc(title));
-        let _ = write!(s, r#"<line x1="{l}" y1="{}" x2="{}" y2="{}" class="axis"/><line x1="{l}" y1="{t}" x2="{l}" y2="{}" class="axis"/>"#, h - b, w - r, h - b, h - b);
+        let mut s = format!(
+            r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#,
+            esc(title)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{l}" y="16" class="title">{}</text>"#,
+            esc(title)
+        );
+        let _ = write!(
+            s,
+            r#"<line x1="{l}" y1="{}" x2="{}" y2="{}" class="axis"/><line x1="{l}" y1="{t}" x2="{l}" y2="{}" class="axis"/>"#,
+            h - b,
+            w - r,
+            h - b,
+            h - b
+        );
         for k in 0..=4 {
             let v = lo + (hi - lo) * k as f64 / 4.0;
-            let _ = write!(s, r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text>"#, l - 4.0, py(v) + 4.0, fmt_num(v));
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text>"#,
+                l - 4.0,
+                py(v) + 4.0,
+                fmt_num(v)
+            );
         }
         let step = (x.len() / 6).max(1);
         for (i, lab) in x.iter().enumerate().step_by(step) {
-            let _ = write!(s, r#"<text x="{:.1}" y="{}" class="tick" text-anchor="middle">{}</text>"#, px(i), h - b + 16.0, esc(lab));
+            let _ = write!(
+                s,
+                r#"<text x="{:.1}" y="{}" class="tick" text-anchor="middle">{}</text>"#,
+                px(i),
+                h - b + 16.0,
+                esc(lab)
+            );
         }
-        let _ = write!(s, r#"<text x="12" y="{:.1}" class="tick" transform="rotate(-90 12 {:.1})" text-anchor="middle">{}</text>"#, (t + h - b) / 2.0, (t + h - b) / 2.0, esc(y_label));
+        let _ = write!(
+            s,
+            r#"<text x="12" y="{:.1}" class="tick" transform="rotate(-90 12 {:.1})" text-anchor="middle">{}</text>"#,
+            (t + h - b) / 2.0,
+            (t + h - b) / 2.0,
+            esc(y_label)
+        );
         let pts: Vec<String> = y
             .iter()
             .enumerate()
             .filter_map(|(i, v)| v.map(|v| format!("{:.1},{:.1}", px(i), py(v))))
             .collect();
-        let _ = write!(s, r#"<polyline points="{}" class="series"/>"#, pts.join(" "));
+        let _ = write!(
+            s,
+            r#"<polyline points="{}" class="series"/>"#,
+            pts.join(" ")
+        );
         for (i, v) in y.iter().enumerate() {
             if let Some(v) = v {
-                let _ = write!(s, r#"<circle cx="{:.1}" cy="{:.1}" r="3" class="dot"><title>{}: {}</title></circle>"#, px(i), py(*v), esc(&x[i]), fmt_num(*v));
+                let _ = write!(
+                    s,
+                    r#"<circle cx="{:.1}" cy="{:.1}" r="3" class="dot"><title>{}: {}</title></circle>"#,
+                    px(i),
+                    py(*v),
+                    esc(&x[i]),
+                    fmt_num(*v)
+                );
             }
         }
         s.push_str("</svg>");
@@ -100,79 +143,193 @@ pub mod svg {
         let (w, h, l, b, t) = (300.0, 170.0, 8.0, 30.0, 24.0);
         let max = counts.iter().copied().max().unwrap_or(1).max(1) as f64;
         let bw = (w - 2.0 * l) / counts.len().max(1) as f64;
-        let mut s = format!(r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#, esc(title));
-        let _ = write!(s, r#"<text x="{l}" y="15" class="title">{}</text>"#, esc(title));
+        let mut s = format!(
+            r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#,
+            esc(title)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{l}" y="15" class="title">{}</text>"#,
+            esc(title)
+        );
         for (i, c) in counts.iter().enumerate() {
             let bh = (h - t - b) * *c as f64 / max;
-            let _ = write!(s, r#"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" class="bar"><title>[{}, {}): {c}</title></rect>"#,
-                l + bw * i as f64, h - b - bh, (bw - 1.0).max(1.0), bh.max(0.5), fmt_num(edges[i]), fmt_num(edges[i + 1]));
+            let _ = write!(
+                s,
+                r#"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" class="bar"><title>[{}, {}): {c}</title></rect>"#,
+                l + bw * i as f64,
+                h - b - bh,
+                (bw - 1.0).max(1.0),
+                bh.max(0.5),
+                fmt_num(edges[i]),
+                fmt_num(edges[i + 1])
+            );
         }
-        let _ = write!(s, r#"<line x1="{l}" y1="{}" x2="{}" y2="{}" class="axis"/>"#, h - b, w - l, h - b);
-        let _ = write!(s, r#"<text x="{l}" y="{}" class="tick">{}</text><text x="{}" y="{}" class="tick" text-anchor="end">{}</text>"#,
-            h - b + 14.0, fmt_num(edges[0]), w - l, h - b + 14.0, fmt_num(*edges.last().unwrap_or(&0.0)));
-        let _ = write!(s, r#"<text x="{}" y="{}" class="tick" text-anchor="middle">nulls: {nulls}</text>"#, w / 2.0, h - 4.0);
+        let _ = write!(
+            s,
+            r#"<line x1="{l}" y1="{}" x2="{}" y2="{}" class="axis"/>"#,
+            h - b,
+            w - l,
+            h - b
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{l}" y="{}" class="tick">{}</text><text x="{}" y="{}" class="tick" text-anchor="end">{}</text>"#,
+            h - b + 14.0,
+            fmt_num(edges[0]),
+            w - l,
+            h - b + 14.0,
+            fmt_num(*edges.last().unwrap_or(&0.0))
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{}" y="{}" class="tick" text-anchor="middle">nulls: {nulls}</text>"#,
+            w / 2.0,
+            h - 4.0
+        );
         s.push_str("</svg>");
         s
     }
 
     /// Horizontal bars with values in `[lo, hi]` and a reference line at `mark`.
-    pub fn hbars(title: &str, labels: &[String], values: &[f64], lo: f64, hi: f64, mark: f64) -> String {
+    pub fn hbars(
+        title: &str,
+        labels: &[String],
+        values: &[f64],
+        lo: f64,
+        hi: f64,
+        mark: f64,
+    ) -> String {
         let (l, r, row, t) = (230.0, 60.0, 16.0, 28.0);
         let w = 640.0;
         let h = t + row * labels.len() as f64 + 24.0;
         let px = |v: f64| l + (w - l - r) * ((v - lo) / (hi - lo)).clamp(0.0, 1.0);
-        let mut s = format!(r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#, esc(title));
-        let _ = write!(s, r#"<text x="8" y="16" class="title">{}</text>"#, esc(title));
+        let mut s = format!(
+            r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}" role="img" aria-label="{}">"#,
+            esc(title)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="8" y="16" class="title">{}</text>"#,
+            esc(title)
+        );
         for (i, (lab, v)) in labels.iter().zip(values).enumerate() {
             let y = t + row * i as f64;
             let (a, b) = (px(mark), px(*v));
-            let cls = if (*v - mark).abs() >= 0.45 * (hi - lo) { "bar alert" } else { "bar" };
-            let _ = write!(s, r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text><rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" class="{cls}"><title>{}: {v:.4}</title></rect><text x="{:.1}" y="{:.1}" class="tick">{v:.3}</text>"#,
-                l - 6.0, y + 11.0, esc(lab), a.min(b), y + 2.0, (a - b).abs().max(1.0), row - 4.0, esc(lab), a.max(b) + 4.0, y + 11.0);
+            let cls = if (*v - mark).abs() >= 0.45 * (hi - lo) {
+                "bar alert"
+            } else {
+                "bar"
+            };
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text><rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" class="{cls}"><title>{}: {v:.4}</title></rect><text x="{:.1}" y="{:.1}" class="tick">{v:.3}</text>"#,
+                l - 6.0,
+                y + 11.0,
+                esc(lab),
+                a.min(b),
+                y + 2.0,
+                (a - b).abs().max(1.0),
+                row - 4.0,
+                esc(lab),
+                a.max(b) + 4.0,
+                y + 11.0
+            );
         }
-        let _ = write!(s, r#"<line x1="{:.1}" y1="{t}" x2="{:.1}" y2="{:.1}" class="axis"/>"#, px(mark), px(mark), h - 20.0);
-        let _ = write!(s, r#"<text x="{:.1}" y="{:.1}" class="tick" text-anchor="middle">{}</text><text x="{:.1}" y="{:.1}" class="tick" text-anchor="middle">{}</text>"#,
-            px(lo), h - 6.0, fmt_num(lo), px(hi), h - 6.0, fmt_num(hi));
+        let _ = write!(
+            s,
+            r#"<line x1="{:.1}" y1="{t}" x2="{:.1}" y2="{:.1}" class="axis"/>"#,
+            px(mark),
+            px(mark),
+            h - 20.0
+        );
+        let _ = write!(
+            s,
+            r#"<text x="{:.1}" y="{:.1}" class="tick" text-anchor="middle">{}</text><text x="{:.1}" y="{:.1}" class="tick" text-anchor="middle">{}</text>"#,
+            px(lo),
+            h - 6.0,
+            fmt_num(lo),
+            px(hi),
+            h - 6.0,
+            fmt_num(hi)
+        );
         s.push_str("</svg>");
         s
     }
 
     /// A heat map: rows x columns of values, colored from `lo` (light) to `hi` (dark);
     /// `diverging` colors negative values blue and positive red.
-    pub fn heat(title: &str, rows: &[String], cols: &[String], cells: &[Vec<Option<f64>>], lo: f64, hi: f64, diverging: bool) -> String {
+    pub fn heat(
+        title: &str,
+        rows: &[String],
+        cols: &[String],
+        cells: &[Vec<Option<f64>>],
+        lo: f64,
+        hi: f64,
+        diverging: bool,
+    ) -> String {
         let (l, t) = (230.0, 40.0);
         let cw = (560.0 / cols.len().max(1) as f64).clamp(6.0, 28.0);
         let ch = 14.0;
         let w = l + cw * cols.len() as f64 + 20.0;
         let h = t + ch * rows.len() as f64 + 60.0;
-        let mut s = format!(r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w:.0}" height="{h:.0}" viewBox="0 0 {w:.0} {h:.0}" role="img" aria-label="{}">"#, esc(title));
-        let _ = write!(s, r#"<text x="8" y="16" class="title">{}</text>"#, esc(title));
+        let mut s = format!(
+            r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w:.0}" height="{h:.0}" viewBox="0 0 {w:.0} {h:.0}" role="img" aria-label="{}">"#,
+            esc(title)
+        );
+        let _ = write!(
+            s,
+            r#"<text x="8" y="16" class="title">{}</text>"#,
+            esc(title)
+        );
         for (i, lab) in rows.iter().enumerate() {
-            let _ = write!(s, r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text>"#, l - 4.0, t + ch * i as f64 + 11.0, esc(lab));
+            let _ = write!(
+                s,
+                r#"<text x="{}" y="{:.1}" class="tick" text-anchor="end">{}</text>"#,
+                l - 4.0,
+                t + ch * i as f64 + 11.0,
+                esc(lab)
+            );
             for (j, v) in cells[i].iter().enumerate() {
                 let fill = match v {
                     None => "#eeeeee".to_string(),
                     Some(v) if diverging => {
                         let x = (v / hi.abs().max(1e-12)).clamp(-1.0, 1.0);
                         let k = (255.0 * (1.0 - x.abs())) as u8;
-                        if x >= 0.0 { format!("rgb(255,{k},{k})") } else { format!("rgb({k},{k},255)") }
+                        if x >= 0.0 {
+                            format!("rgb(255,{k},{k})")
+                        } else {
+                            format!("rgb({k},{k},255)")
+                        }
                     }
                     Some(v) => {
                         let x = ((v - lo) / (hi - lo)).clamp(0.0, 1.0);
                         let k = (255.0 * (1.0 - x)) as u8;
-                        format!("rgb(255,{k},{})", (k as f64 * 0.6) as u8)
+                        format!("rgb(255,{k},{k})")
                     }
                 };
                 let tip = v.map(|v| format!("{v:.4}")).unwrap_or_else(|| "n/a".into());
-                let _ = write!(s, r#"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{fill}" class="cell"><title>{} / {}: {tip}</title></rect>"#,
-                    l + cw * j as f64, t + ch * i as f64, cw - 1.0, ch - 1.0, esc(&rows[i]), esc(&cols[j]));
+                let _ = write!(
+                    s,
+                    r#"<rect x="{:.1}" y="{:.1}" width="{:.1}" height="{:.1}" fill="{fill}" class="cell"><title>{} / {}: {tip}</title></rect>"#,
+                    l + cw * j as f64,
+                    t + ch * i as f64,
+                    cw - 1.0,
+                    ch - 1.0,
+                    esc(&rows[i]),
+                    esc(&cols[j])
+                );
             }
         }
         let step = (cols.len() / 8).max(1);
         for (j, lab) in cols.iter().enumerate().step_by(step) {
             let x = l + cw * j as f64 + cw / 2.0;
             let y = t + ch * rows.len() as f64 + 8.0;
-            let _ = write!(s, r#"<text x="{x:.1}" y="{y:.1}" class="tick" transform="rotate(40 {x:.1} {y:.1})">{}</text>"#, esc(lab));
+            let _ = write!(
+                s,
+                r#"<text x="{x:.1}" y="{y:.1}" class="tick" transform="rotate(40 {x:.1} {y:.1})">{}</text>"#,
+                esc(lab)
+            );
         }
         s.push_str("</svg>");
         s
@@ -199,10 +356,18 @@ pub async fn report(
 
     // Population and null shares per day.
     let mut cols = vec!["dt".to_string(), "COUNT(*)".to_string()];
-    cols.extend(pipeline.features.iter().map(|f| format!("COUNT({})", ident(&f.name))));
+    cols.extend(
+        pipeline
+            .features
+            .iter()
+            .map(|f| format!("COUNT({})", ident(&f.name))),
+    );
     let batches = collect(
         ctx,
-        &format!("SELECT {} FROM __report_snap WHERE {in_range} GROUP BY dt ORDER BY dt", cols.join(", ")),
+        &format!(
+            "SELECT {} FROM __report_snap WHERE {in_range} GROUP BY dt ORDER BY dt",
+            cols.join(", ")
+        ),
         "population per day",
     )
     .await?;
@@ -210,13 +375,23 @@ pub async fn report(
     for b in &batches {
         for r in 0..b.num_rows() {
             let d = value_text(b.column(0), r).unwrap_or_default();
-            let v: Vec<f64> = (1..b.num_columns()).map(|c| value_f64(b.column(c), r).unwrap_or(0.0)).collect();
+            let v: Vec<f64> = (1..b.num_columns())
+                .map(|c| value_f64(b.column(c), r).unwrap_or(0.0))
+                .collect();
             per_day.insert(d, v);
         }
     }
-    let pop: Vec<Option<f64>> = days.iter().map(|d| per_day.get(&d.to_string()).map(|v| v[0])).collect();
+    let pop: Vec<Option<f64>> = days
+        .iter()
+        .map(|d| per_day.get(&d.to_string()).map(|v| v[0]))
+        .collect();
     body.push_str("<h2>Population and label rate</h2><div class=\"row\">");
-    body.push_str(&svg::line("Population (rows per snapshot)", &labels_x, &pop, "rows"));
+    body.push_str(&svg::line(
+        "Population (rows per snapshot)",
+        &labels_x,
+        &pop,
+        "rows",
+    ));
     charts += 1;
 
     // Label rate over time.
@@ -227,12 +402,27 @@ pub async fn report(
         let mut rate = BTreeMap::new();
         for batch in &b {
             for r in 0..batch.num_rows() {
-                rate.insert(value_text(batch.column(0), r).unwrap_or_default(), value_f64(batch.column(1), r));
+                rate.insert(
+                    value_text(batch.column(0), r).unwrap_or_default(),
+                    value_f64(batch.column(1), r),
+                );
             }
         }
-        let y: Vec<Option<f64>> = days.iter().map(|d| rate.get(&d.to_string()).copied().flatten()).collect();
-        let name = pipeline.label.as_ref().map(|l| l.name.as_str()).unwrap_or("label");
-        body.push_str(&svg::line(&format!("Label rate ({name}, matured rows)"), &labels_x, &y, "share"));
+        let y: Vec<Option<f64>> = days
+            .iter()
+            .map(|d| rate.get(&d.to_string()).copied().flatten())
+            .collect();
+        let name = pipeline
+            .label
+            .as_ref()
+            .map(|l| l.name.as_str())
+            .unwrap_or("label");
+        body.push_str(&svg::line(
+            &format!("Label rate ({name}, matured rows)"),
+            &labels_x,
+            &y,
+            "share",
+        ));
         charts += 1;
     } else {
         body.push_str("<p class=\"empty\">Label rate: no matured labels yet.</p>");
@@ -240,12 +430,16 @@ pub async fn report(
     body.push_str("</div>");
 
     // Distributions on the last day.
-    let _ = write!(body, "<h2>Feature distributions on {last}</h2><div class=\"row\">");
+    let _ = write!(
+        body,
+        "<h2>Feature distributions on {last}</h2><div class=\"row\">"
+    );
     let day_filter = format!("dt = {}", literal(&last.to_string()));
     for f in &features {
         let v = format!("CAST({} AS DOUBLE)", ident(f));
         let mm = tables::first_row(&collect(ctx, &format!("SELECT MIN({v}), MAX({v}), COUNT(*) - COUNT({v}) FROM __report_snap WHERE {day_filter}"), "feature range").await?);
-        let (Some(lo), Some(hi)) = (mm.first().copied().flatten(), mm.get(1).copied().flatten()) else {
+        let (Some(lo), Some(hi)) = (mm.first().copied().flatten(), mm.get(1).copied().flatten())
+        else {
             continue;
         };
         let nulls = mm.get(2).copied().flatten().unwrap_or(0.0) as u64;
@@ -255,7 +449,9 @@ pub async fn report(
         let mut counts = vec![0u64; nb];
         for batch in &b {
             for r in 0..batch.num_rows() {
-                if let (Some(i), Some(c)) = (value_f64(batch.column(0), r), value_f64(batch.column(1), r)) {
+                if let (Some(i), Some(c)) =
+                    (value_f64(batch.column(0), r), value_f64(batch.column(1), r))
+                {
                     if let Some(slot) = counts.get_mut(i.max(0.0) as usize) {
                         *slot += c as u64;
                     }
@@ -275,14 +471,37 @@ pub async fn report(
         if (*d - prev).num_days() != 1 {
             continue;
         }
-        let values = psi_between(ctx, "__report_snap", &days_filter(prev, prev), "__report_snap", &days_filter(*d, *d), &features).await?;
+        let values = psi_between(
+            ctx,
+            "__report_snap",
+            &days_filter(prev, prev),
+            "__report_snap",
+            &days_filter(*d, *d),
+            &features,
+        )
+        .await?;
         for (i, f) in features.iter().enumerate() {
             drift[i][j] = values.get(f).copied();
         }
     }
-    let fail_at = pipeline.checks.drift.as_ref().map(|d| d.fail).unwrap_or(0.25);
+    let fail_at = pipeline
+        .checks
+        .drift
+        .as_ref()
+        .map(|d| d.fail)
+        .unwrap_or(0.25);
     body.push_str("<h2>Drift</h2>");
-    body.push_str(&svg::heat(&format!("PSI against the previous day (dark at {fail_at} and above; grey: no previous day)"), &features, &labels_x, &drift, 0.0, fail_at, false));
+    body.push_str(&svg::heat(
+        &format!(
+            "PSI against the previous day (dark at {fail_at} and above; grey: no previous day)"
+        ),
+        &features,
+        &labels_x,
+        &drift,
+        0.0,
+        fail_at,
+        false,
+    ));
     charts += 1;
 
     // AUC bars and the correlation matrix.
@@ -291,17 +510,35 @@ pub async fn report(
         Some(a) => Some(a.clone()),
         None => {
             // Without labels the matrix is still useful: correlations between features.
-            let view = ctx.sql(&format!("SELECT *, 0 AS __y FROM __report_snap WHERE {in_range}")).await.map_err(crate::engine("report rows"))?;
+            let view = ctx
+                .sql(&format!(
+                    "SELECT *, 0 AS __y FROM __report_snap WHERE {in_range}"
+                ))
+                .await
+                .map_err(crate::engine("report rows"))?;
             let _ = ctx.deregister_table("__report_rows");
-            ctx.register_table("__report_rows", view.into_view()).map_err(crate::engine("report rows"))?;
+            ctx.register_table("__report_rows", view.into_view())
+                .map_err(crate::engine("report rows"))?;
             Some(analyse(ctx, "__report_rows", "__y", &features, true).await?)
         }
     };
     if has_labels {
         if let Some(a) = &outcome.analysis {
-            let labels: Vec<String> = a.features.iter().filter(|f| f.auc.is_some()).map(|f| f.name.clone()).collect();
+            let labels: Vec<String> = a
+                .features
+                .iter()
+                .filter(|f| f.auc.is_some())
+                .map(|f| f.name.clone())
+                .collect();
             let values: Vec<f64> = a.features.iter().filter_map(|f| f.auc).collect();
-            body.push_str(&svg::hbars("Single-feature ROC AUC (0.5 = no signal; red near 0 or 1)", &labels, &values, 0.0, 1.0, 0.5));
+            body.push_str(&svg::hbars(
+                "Single-feature ROC AUC (0.5 = no signal; red near 0 or 1)",
+                &labels,
+                &values,
+                0.0,
+                1.0,
+                0.5,
+            ));
             charts += 1;
         }
     } else {
@@ -314,35 +551,69 @@ pub async fn report(
     let nulls: Vec<Vec<Option<f64>>> = (0..names.len())
         .map(|i| {
             days.iter()
-                .map(|d| per_day.get(&d.to_string()).and_then(|v| (v[0] > 0.0).then(|| 1.0 - v[i + 1] / v[0])))
+                .map(|d| {
+                    per_day
+                        .get(&d.to_string())
+                        .and_then(|v| (v[0] > 0.0).then(|| 1.0 - v[i + 1] / v[0]))
+                })
                 .collect()
         })
         .collect();
-    body.push_str(&svg::heat("Share of null values per feature and day", &names, &labels_x, &nulls, 0.0, 1.0, false));
+    body.push_str(&svg::heat(
+        "Share of null values per feature and day",
+        &names,
+        &labels_x,
+        &nulls,
+        0.0,
+        1.0,
+        false,
+    ));
     charts += 1;
 
     if let Some(a) = &analysis {
         body.push_str("<h2>Correlation between features</h2>");
         let short: Vec<String> = a.features.iter().map(|f| f.name.clone()).collect();
-        body.push_str(&svg::heat("Pearson correlation (red positive, blue negative)", &short, &short, &a.pearson, -1.0, 1.0, true));
+        body.push_str(&svg::heat(
+            "Pearson correlation (red positive, blue negative)",
+            &short,
+            &short,
+            &a.pearson,
+            -1.0,
+            1.0,
+            true,
+        ));
         charts += 1;
         if !outcome.redundant.is_empty() {
             body.push_str("<p>Redundant pairs: ");
-            let items: Vec<String> = outcome.redundant.iter().map(|(x, y, p, s)| format!("{} ~ {} (Pearson {p:.3}, Spearman {s:.3})", esc(x), esc(y))).collect();
+            let items: Vec<String> = outcome
+                .redundant
+                .iter()
+                .map(|(x, y, p, s)| {
+                    format!("{} ~ {} (Pearson {p:.3}, Spearman {s:.3})", esc(x), esc(y))
+                })
+                .collect();
             body.push_str(&items.join("; "));
             body.push_str("</p>");
         }
     }
 
     // Audit results.
-    body.push_str("<h2>Audit</h2><table><tr><th>#</th><th>check</th><th>status</th><th>evidence</th></tr>");
+    body.push_str(
+        "<h2>Audit</h2><table><tr><th>#</th><th>check</th><th>status</th><th>evidence</th></tr>",
+    );
     for c in &outcome.checks {
         let (cls, word) = match c.status {
             Status::Pass => ("pass", "pass"),
             Status::Fail => ("fail", "FAIL"),
             Status::Skipped => ("skip", "skipped"),
         };
-        let _ = write!(body, "<tr><td>{}</td><td>{}</td><td class=\"{cls}\">{word}</td><td>{}</td></tr>", c.number, esc(c.name), esc(&c.summary));
+        let _ = write!(
+            body,
+            "<tr><td>{}</td><td>{}</td><td class=\"{cls}\">{word}</td><td>{}</td></tr>",
+            c.number,
+            esc(c.name),
+            esc(&c.summary)
+        );
     }
     body.push_str("</table>");
 

@@ -92,10 +92,7 @@ pub async fn analyse(
         cols.join(", "),
         ident(table)
     );
-    let mut aggs = vec![
-        "COUNT(*) AS n".to_string(),
-        "SUM(__y) AS n1".to_string(),
-    ];
+    let mut aggs = vec!["COUNT(*) AS n".to_string(), "SUM(__y) AS n1".to_string()];
     for i in 0..features.len() {
         aggs.push(format!("COUNT(v{i}) AS c{i}"));
         aggs.push(format!("SUM(r{i}) FILTER (WHERE __y = 1.0) AS s{i}"));

@@ -70,7 +70,9 @@ pub async fn prepare(args: &AuditArgs) -> Result<std::result::Result<Prepared, u
         }
     }
     if !(0.0..0.5).contains(&args.auc_margin) {
-        return Err(invalid("--auc-margin must be at least 0 and below 0.5".into()));
+        return Err(invalid(
+            "--auc-margin must be at least 0 and below 0.5".into(),
+        ));
     }
     let pipeline = match load(&args.pipeline) {
         Ok(p) => p,
@@ -158,7 +160,10 @@ fn print_table(o: &AuditOutcome, opts: &AuditOptions) {
             "features against the label ({} matured rows, {} positive):",
             a.rows, a.positives
         );
-        println!("  {:32} {:>7} {:>8} {:>8}", "feature", "AUC", "Pearson", "Spearman");
+        println!(
+            "  {:32} {:>7} {:>8} {:>8}",
+            "feature", "AUC", "Pearson", "Spearman"
+        );
         let f = |v: Option<f64>| v.map(|x| format!("{x:.3}")).unwrap_or_else(|| "-".into());
         for s in &a.features {
             println!(

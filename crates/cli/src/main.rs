@@ -87,9 +87,7 @@ enum Command {
         json: bool,
     },
     /// Write one self-contained HTML report (inline SVG charts) on the built outputs.
-    #[command(
-        after_help = "Example:\n  daymark report pipelines/demo.yaml --out report.html"
-    )]
+    #[command(after_help = "Example:\n  daymark report pipelines/demo.yaml --out report.html")]
     Report {
         #[command(flatten)]
         args: audit_cmd::AuditArgs,

@@ -20,7 +20,11 @@ pub async fn run(args: AuditArgs, html: &Path) -> Result<u8> {
         html.display(),
         page.charts,
         page.days,
-        if page.audit_passed { "passed" } else { "FAILED" }
+        if page.audit_passed {
+            "passed"
+        } else {
+            "FAILED"
+        }
     );
     Ok(exit::OK)
 }
