@@ -271,7 +271,8 @@ pub mod svg {
         let (l, t) = (230.0, 40.0);
         let cw = (560.0 / cols.len().max(1) as f64).clamp(6.0, 28.0);
         let ch = 14.0;
-        let w = l + cw * cols.len() as f64 + 20.0;
+        // Wide enough for the title even with few columns.
+        let w = (l + cw * cols.len() as f64 + 20.0).max(640.0);
         let h = t + ch * rows.len() as f64 + 60.0;
         let mut s = format!(
             r#"<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{w:.0}" height="{h:.0}" viewBox="0 0 {w:.0} {h:.0}" role="img" aria-label="{}">"#,
