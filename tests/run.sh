@@ -5,6 +5,11 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
+# Headless Chromium (Debian package) opens the HTML report in tests/reference/test_audit.py.
+if ! command -v chromium >/dev/null; then
+  apt-get update && apt-get install -y chromium
+fi
+
 python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ignore -r tests/requirements.txt
 
 cargo test --workspace

@@ -222,6 +222,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     }
     let mut rows = 0u64;
     let mut warnings = 0usize;
+    let staged_checks = daymark_audit::quality::DailyChecks::new(&pipeline, mode);
     if tiled && days.len() > 1 {
         // A backfill: every day from one set-based query over the tiles.
         let mut done = 0usize;
@@ -232,6 +233,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             &out,
             &days,
             mode,
+            Some(&staged_checks),
             |r| {
                 done += 1;
                 rows += r.rows;
@@ -251,8 +253,17 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             } else {
                 snapshot_query(&pipeline, *day, mode)
             };
-            match daymark_engine::build::build_day(&ctx, &pipeline, &out, *day, mode, &query.sql)
-                .await
+            match daymark_engine::build::build_day_checked(
+                &ctx,
+                &pipeline,
+                &out,
+                *day,
+                mode,
+                &query.sql,
+                tiled.then_some(&layouts),
+                Some(&staged_checks),
+            )
+            .await
             {
                 Ok(r) => {
                     rows += r.rows;

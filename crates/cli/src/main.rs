@@ -1,10 +1,12 @@
 //! The `daymark` command line.
 
+mod audit_cmd;
 mod commands;
 mod export_cmd;
 mod labels_cmd;
 mod outcomes_cmd;
 mod report;
+mod report_cmd;
 
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
@@ -91,6 +93,26 @@ enum Command {
         after_help = "Example:\n  daymark outcomes pipelines/demo.yaml --scores scores.parquet --top-k 100 --min-auc 0.6"
     )]
     Outcomes(outcomes_cmd::OutcomesArgs),
+    /// Audit built snapshots for leakage: plan, provenance, recomputation, label scan, skew.
+    #[command(
+        after_help = "Example:\n  daymark audit pipelines/demo.yaml\n  daymark audit pipelines/demo.yaml --from 2026-03-01 --to 2026-03-31 --sample 500 --seed 7 --json"
+    )]
+    Audit {
+        #[command(flatten)]
+        args: audit_cmd::AuditArgs,
+        /// Print JSON instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Write one self-contained HTML report (inline SVG charts) on the built outputs.
+    #[command(after_help = "Example:\n  daymark report pipelines/demo.yaml --out report.html")]
+    Report {
+        #[command(flatten)]
+        args: audit_cmd::AuditArgs,
+        /// The HTML file to write (a local path).
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Print the JSON Schema of pipeline files (for editors).
     #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
     Schema,
@@ -139,6 +161,8 @@ fn main() -> ExitCode {
             Command::Labels(args) => labels_cmd::labels(args).await,
             Command::Export(args) => export_cmd::export(args).await,
             Command::Outcomes(args) => outcomes_cmd::outcomes(args).await,
+            Command::Audit { args, json } => audit_cmd::run(args, json).await,
+            Command::Report { args, out } => report_cmd::run(args, &out).await,
             Command::Schema => {
                 print!("{}", daymark_spec::json_schema());
                 Ok(exit::OK)

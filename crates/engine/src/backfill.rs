@@ -24,7 +24,7 @@
 //! built-in functions, so the plan can run on a cluster unchanged. The naive per-day query
 //! (`sql.rs`) stays the oracle: `tests/tiled_vs_naive.rs` compares every cell.
 
-use crate::build::{snapshot_path, BuildError, DayReport, DayWriter};
+use crate::build::{snapshot_path, BuildError, DayReport, DayWriter, StagedCheck};
 use crate::sql::{feature_column, finish, ident, literal, KnowledgeOverride};
 use crate::tiles::TileLayout;
 use chrono::NaiveDate;
@@ -553,7 +553,8 @@ pub fn range_query(
 }
 
 /// Builds and publishes every snapshot of `days` (consecutive) from one query, each day
-/// through its own staging file, checks and rename. `on_day` is told of each published
+/// through its own staging file, checks (expectations, then `staged_check`), provenance
+/// in the footer, and rename. `on_day` is told of each published
 /// day as it goes. Days whose population is empty get an empty snapshot, as in a
 /// per-day build.
 pub async fn build_range(
@@ -563,12 +564,16 @@ pub async fn build_range(
     out: &Location,
     days: &[NaiveDate],
     mode: KnowledgeOverride,
+    staged_check: Option<&dyn StagedCheck>,
     mut on_day: impl FnMut(&DayReport),
 ) -> Result<Vec<DayReport>, BuildError> {
     let (Some(&first), Some(&last)) = (days.first(), days.last()) else {
         return Ok(Vec::new());
     };
     let engine = |day| move |source| BuildError::Engine { day, source };
+    let provenance = crate::provenance::range_provenance(ctx, pipeline, days, mode, layouts)
+        .await
+        .map_err(engine(first))?;
     let types = tile_types(ctx, layouts).await;
     let sql = range_query(pipeline, layouts, first, last, mode, &types);
     let df = ctx.sql(&sql).await.map_err(engine(first))?;
@@ -582,15 +587,30 @@ pub async fn build_range(
     let mut current: Option<(DayWriter, Instant)> = None;
     let epoch = NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch");
 
+    #[allow(clippy::too_many_arguments)]
     async fn close(
         w: (DayWriter, Instant),
+        ctx: &SessionContext,
+        provenance: &BTreeMap<NaiveDate, crate::provenance::Provenance>,
+        staged_check: Option<&dyn StagedCheck>,
         pipeline: &Pipeline,
         reports: &mut Vec<DayReport>,
         on_day: &mut impl FnMut(&DayReport),
     ) -> Result<(), BuildError> {
         let (writer, t0) = w;
         let day = writer.day();
-        let (rows, bytes, warnings) = writer.finish(Some(pipeline)).await?;
+        let metadata = provenance
+            .get(&day)
+            .map(|p| {
+                vec![(
+                    crate::provenance::METADATA_KEY.to_string(),
+                    serde_json::to_string(p).unwrap_or_default(),
+                )]
+            })
+            .unwrap_or_default();
+        let (rows, bytes, warnings) = writer
+            .finish_with(ctx, Some(pipeline), &metadata, staged_check)
+            .await?;
         let r = DayReport {
             day,
             rows,
@@ -621,7 +641,16 @@ pub async fn build_range(
                 }
                 if current.as_ref().map(|(w, _)| w.day()) != Some(d) {
                     if let Some(w) = current.take() {
-                        close(w, pipeline, &mut reports, &mut on_day).await?;
+                        close(
+                            w,
+                            ctx,
+                            &provenance,
+                            staged_check,
+                            pipeline,
+                            &mut reports,
+                            &mut on_day,
+                        )
+                        .await?;
                     }
                     // Days before `d` with no rows at all still get a (empty) snapshot.
                     while let Some(&p) = pending.peek() {
@@ -631,7 +660,16 @@ pub async fn build_range(
                         pending.next();
                         let w =
                             DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
-                        close((w, Instant::now()), pipeline, &mut reports, &mut on_day).await?;
+                        close(
+                            (w, Instant::now()),
+                            ctx,
+                            &provenance,
+                            staged_check,
+                            pipeline,
+                            &mut reports,
+                            &mut on_day,
+                        )
+                        .await?;
                     }
                     pending.next();
                     current = Some((
@@ -658,11 +696,29 @@ pub async fn build_range(
         return Err(e);
     }
     if let Some(w) = current.take() {
-        close(w, pipeline, &mut reports, &mut on_day).await?;
+        close(
+            w,
+            ctx,
+            &provenance,
+            staged_check,
+            pipeline,
+            &mut reports,
+            &mut on_day,
+        )
+        .await?;
     }
     for p in pending {
         let w = DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
-        close((w, Instant::now()), pipeline, &mut reports, &mut on_day).await?;
+        close(
+            (w, Instant::now()),
+            ctx,
+            &provenance,
+            staged_check,
+            pipeline,
+            &mut reports,
+            &mut on_day,
+        )
+        .await?;
     }
     Ok(reports)
 }

@@ -21,6 +21,7 @@ use daymark_store::Location;
 use futures::StreamExt;
 use parquet::arrow::AsyncArrowWriter;
 use parquet::basic::{Compression, ZstdLevel};
+use parquet::file::metadata::KeyValue;
 use parquet::file::properties::WriterProperties;
 use serde_json::json;
 use std::collections::BTreeMap;
@@ -52,6 +53,14 @@ pub enum BuildError {
     Store {
         /// The object.
         path: String,
+        /// Why.
+        reason: String,
+    },
+    /// A check of the staged snapshot could not run; nothing was published.
+    #[error("day {day}: checking the staged snapshot failed: {reason}")]
+    Check {
+        /// The snapshot day.
+        day: NaiveDate,
         /// Why.
         reason: String,
     },
@@ -308,6 +317,19 @@ impl DayWriter {
         self,
         checks: Option<&Pipeline>,
     ) -> Result<(u64, u64, Vec<String>), BuildError> {
+        let ctx = SessionContext::new();
+        self.finish_with(&ctx, checks, &[], None).await
+    }
+
+    /// [`DayWriter::finish`] with key-value metadata for the Parquet footer and a check of
+    /// the staged file (run with `ctx`) before it is renamed into place.
+    pub async fn finish_with(
+        self,
+        ctx: &SessionContext,
+        checks: Option<&Pipeline>,
+        metadata: &[(String, String)],
+        staged_check: Option<&dyn StagedCheck>,
+    ) -> Result<(u64, u64, Vec<String>), BuildError> {
         let DayWriter {
             out,
             day,
@@ -317,18 +339,34 @@ impl DayWriter {
             rows,
             tallies,
         } = self;
+        let mut writer = writer;
         let write_err = |path: &StorePath, reason: String| BuildError::Write {
             day,
             path: path.to_string(),
             reason,
         };
+        for (k, v) in metadata {
+            writer.append_key_value_metadata(KeyValue::new(k.clone(), v.clone()));
+        }
         if let Err(e) = writer.close().await {
             let _ = out.store.delete(&staging).await;
             return Err(write_err(&staging, e.to_string()));
         }
         let warnings = match checks {
             Some(p) => {
-                let (fail, warnings) = judge(p, rows, &tallies);
+                let (mut fail, mut warnings) = judge(p, rows, &tallies);
+                if let Some(c) = staged_check {
+                    match c.check(ctx, &out, &staging, day, rows).await {
+                        Ok((f, w)) => {
+                            fail.extend(f);
+                            warnings.extend(w);
+                        }
+                        Err(reason) => {
+                            let _ = out.store.delete(&staging).await;
+                            return Err(BuildError::Check { day, reason });
+                        }
+                    }
+                }
                 if !fail.is_empty() {
                     let _ = out.store.delete(&staging).await;
                     return Err(BuildError::ChecksFailed {
@@ -371,6 +409,42 @@ pub async fn write_query(
     day: NaiveDate,
     checks: Option<&Pipeline>,
 ) -> Result<(u64, u64, Vec<String>), BuildError> {
+    write_query_with(ctx, sql, out, final_path, day, checks, &[], None).await
+}
+
+/// Checks run on a snapshot written to staging, before it is published (population size,
+/// drift: see the `daymark-audit` crate). Boxed futures keep the trait usable as `dyn`.
+pub trait StagedCheck: Send + Sync {
+    /// Checks the staged file `staged` of snapshot `day` (`rows` rows). Returns (failures,
+    /// warnings); any failure leaves the snapshot unpublished.
+    fn check<'a>(
+        &'a self,
+        ctx: &'a SessionContext,
+        out: &'a Location,
+        staged: &'a StorePath,
+        day: NaiveDate,
+        rows: u64,
+    ) -> StagedCheckFuture<'a>;
+}
+
+/// What a [`StagedCheck`] returns: (failures, warnings), or why it could not run.
+pub type StagedCheckFuture<'a> = std::pin::Pin<
+    Box<dyn std::future::Future<Output = Result<(Vec<String>, Vec<String>), String>> + Send + 'a>,
+>;
+
+/// [`write_query`] with key-value metadata for the Parquet footer and an optional check of
+/// the staged file before it is renamed into place.
+#[allow(clippy::too_many_arguments)]
+pub async fn write_query_with(
+    ctx: &SessionContext,
+    sql: &str,
+    out: &Location,
+    final_path: &StorePath,
+    day: NaiveDate,
+    checks: Option<&Pipeline>,
+    metadata: &[(String, String)],
+    staged_check: Option<&dyn StagedCheck>,
+) -> Result<(u64, u64, Vec<String>), BuildError> {
     let engine = |source| BuildError::Engine { day, source };
     let df = ctx.sql(sql).await.map_err(engine)?;
     let mut stream = df.execute_stream().await.map_err(engine)?;
@@ -388,7 +462,9 @@ pub async fn write_query(
         }
         writer.write(&batch).await?;
     }
-    writer.finish(checks).await
+    writer
+        .finish_with(ctx, checks, metadata, staged_check)
+        .await
 }
 
 /// Builds snapshot `day` from `sql` (naive or tiled) and publishes it.
@@ -400,9 +476,43 @@ pub async fn build_day(
     mode: KnowledgeOverride,
     sql: &str,
 ) -> Result<DayReport, BuildError> {
+    build_day_checked(ctx, pipeline, out, day, mode, sql, None, None).await
+}
+
+/// [`build_day`] that also records the snapshot's provenance in its footer (see
+/// [`crate::provenance`]; from the tiles when `tiles` is given, else from the raw
+/// sources) and runs `staged_check` on the staged file before publishing.
+#[allow(clippy::too_many_arguments)]
+pub async fn build_day_checked(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    out: &Location,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+    sql: &str,
+    tiles: Option<&BTreeMap<String, crate::tiles::TileLayout>>,
+    staged_check: Option<&dyn StagedCheck>,
+) -> Result<DayReport, BuildError> {
     let t0 = Instant::now();
     let path = snapshot_path(out, mode, day);
-    let (rows, bytes, warnings) = write_query(ctx, sql, out, &path, day, Some(pipeline)).await?;
+    let prov = crate::provenance::provenance(ctx, pipeline, day, mode, tiles)
+        .await
+        .map_err(|source| BuildError::Engine { day, source })?;
+    let metadata = vec![(
+        crate::provenance::METADATA_KEY.to_string(),
+        serde_json::to_string(&prov).expect("provenance serialises"),
+    )];
+    let (rows, bytes, warnings) = write_query_with(
+        ctx,
+        sql,
+        out,
+        &path,
+        day,
+        Some(pipeline),
+        &metadata,
+        staged_check,
+    )
+    .await?;
     Ok(DayReport {
         day,
         rows,

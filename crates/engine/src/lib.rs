@@ -8,11 +8,13 @@
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
+//! - [`provenance`]: per source, the latest event and arrival time a snapshot read.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
 pub mod backfill;
 pub mod build;
 pub mod check;
+pub mod provenance;
 pub mod session;
 pub mod sources;
 pub mod sql;

@@ -53,6 +53,29 @@ pub struct SourceRead {
     pub last_day: NaiveDate,
     /// Knowledge mode used.
     pub knowledge: Knowledge,
+    /// Event times (and, as-known, arrival times) read are before this instant: the cutoff,
+    /// unless the test-only [`TEST_ONLY_LEAK_ENV`] moves it (the audit checks it).
+    pub until: DateTime<Utc>,
+}
+
+/// TEST ONLY, never for real builds: `source:Nd` (e.g. `plays:3d`) makes the naive path
+/// read that source N days past the cutoff, so that tests can plant a leak and check that
+/// `daymark audit` catches it. Undocumented for users on purpose.
+pub const TEST_ONLY_LEAK_ENV: &str = "DAYMARK_TEST_ONLY_READ_PAST_CUTOFF";
+
+/// The instant up to which `source` is read for a snapshot whose cutoff is `cutoff`: the
+/// cutoff itself, unless a test plants a leak with [`TEST_ONLY_LEAK_ENV`].
+pub fn read_until(source: &str, cutoff: DateTime<Utc>) -> DateTime<Utc> {
+    let Ok(spec) = std::env::var(TEST_ONLY_LEAK_ENV) else {
+        return cutoff;
+    };
+    let Some((name, days)) = spec.split_once(':') else {
+        return cutoff;
+    };
+    match days.trim_end_matches('d').parse::<i64>() {
+        Ok(n) if name == source => cutoff + Duration::days(n),
+        _ => cutoff,
+    }
 }
 
 /// The plan of one snapshot: cutoff, reads and SQL.
@@ -145,15 +168,17 @@ pub fn snapshot_query(
         } else {
             knowledge
         };
+        let until = read_until(name, cutoff);
         // Rows are filed by event day; one day of slack each side covers any time zone.
         let first_day = start.map(|s| s.date_naive() - Duration::days(1));
-        let last_day = cutoff.date_naive() + Duration::days(1);
+        let last_day = until.date_naive() + Duration::days(1);
         reads.insert(
             name.clone(),
             SourceRead {
                 first_day,
                 last_day,
                 knowledge,
+                until,
             },
         );
         let dt = ident(&src.spec.day_partition);
@@ -162,12 +187,12 @@ pub fn snapshot_query(
         if let Some(d) = first_day {
             conds.push(format!("{dt} >= {}", literal(&d.to_string())));
         }
-        conds.push(format!("{ev} < {}", ts_literal(cutoff)));
+        conds.push(format!("{ev} < {}", ts_literal(until)));
         if let Some(s) = start {
             conds.push(format!("{ev} >= {}", ts_literal(*s)));
         }
         if let (Knowledge::AsKnown, Some(a)) = (knowledge, &src.spec.arrival_time) {
-            conds.push(format!("{} < {}", ident(a), ts_literal(cutoff)));
+            conds.push(format!("{} < {}", ident(a), ts_literal(until)));
         }
         conds.push(format!("{} IS NOT NULL", ident(&src.key)));
         let base = format!(

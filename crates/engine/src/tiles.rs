@@ -167,6 +167,11 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
     if columns.is_empty() && distinct.is_empty() {
         return None;
     }
+    // Provenance (crate::provenance): the latest event and arrival time of each tile row.
+    columns.push(format!("MAX({ev}) AS __mev"));
+    if let Some(a) = &arr {
+        columns.push(format!("MAX({a}) AS __mar"));
+    }
     let hash = hash_value(&json!({
         "format": TILE_FORMAT,
         "source": serde_json::to_value(&source.spec).unwrap_or_default(),
