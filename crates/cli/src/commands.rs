@@ -64,11 +64,11 @@ impl std::fmt::Display for InvalidInput {
 
 impl std::error::Error for InvalidInput {}
 
-fn invalid(message: String) -> anyhow::Error {
+pub(crate) fn invalid(message: String) -> anyhow::Error {
     InvalidInput(message).into()
 }
 
-fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
+pub(crate) fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     match knowledge {
         None => Ok(None),
         Some("as-known") => Ok(Some(Knowledge::AsKnown)),
@@ -79,7 +79,7 @@ fn parse_mode(knowledge: Option<&str>) -> Result<Option<Knowledge>> {
     }
 }
 
-fn parse_day(text: &str) -> Result<NaiveDate> {
+pub(crate) fn parse_day(text: &str) -> Result<NaiveDate> {
     let day: NaiveDate = text
         .parse()
         .map_err(|_| invalid(format!("`{text}` is not a date (YYYY-MM-DD)")))?;
@@ -338,7 +338,7 @@ fn load(path: &Path) -> Result<Pipeline, u8> {
     })
 }
 
-fn human_bytes(n: u64) -> String {
+pub(crate) fn human_bytes(n: u64) -> String {
     let units = ["B", "KiB", "MiB", "GiB", "TiB"];
     let mut x = n as f64;
     let mut u = 0;
