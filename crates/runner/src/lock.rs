@@ -58,7 +58,7 @@ impl LockInfo {
 /// The outcome of trying to take the lock.
 pub enum Acquire {
     /// The lock is ours; the text says so when an expired lock was taken over.
-    Acquired(LockGuard, Option<String>),
+    Acquired(Box<LockGuard>, Option<String>),
     /// Another run holds it.
     Held(LockInfo),
 }
@@ -170,7 +170,12 @@ pub async fn acquire(
             )
             .await
         {
-            Ok(_) => return Ok(Acquire::Acquired(LockGuard::start(out, info, lease), None)),
+            Ok(_) => {
+                return Ok(Acquire::Acquired(
+                    Box::new(LockGuard::start(out, info, lease)),
+                    None,
+                ))
+            }
             Err(object_store::Error::AlreadyExists { .. }) => {}
             Err(e) => return Err(store_err(&path, e)),
         }
@@ -211,7 +216,7 @@ pub async fn acquire(
             .map_err(|e| store_err(&path, e))?;
         let message = format!("took over the lock of {}: {reason}", held.describe());
         return Ok(Acquire::Acquired(
-            LockGuard::start(out, info, lease),
+            Box::new(LockGuard::start(out, info, lease)),
             Some(message),
         ));
     }

@@ -321,7 +321,7 @@ pub async fn run_once(
                 if let Some(n) = note {
                     on(Event::LockTakenOver(&n));
                 }
-                break g;
+                break *g;
             }
             Acquire::Held(info) => {
                 if !opts.wait {
