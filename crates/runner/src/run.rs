@@ -454,6 +454,7 @@ async fn build_days(
     for (source, s) in &stats {
         on(Event::Tiles { source, stats: s });
     }
+    record_tiles(pipeline, out, &listings, &layouts, &days, opts.mode, me).await?;
     let whys: BTreeMap<NaiveDate, &str> = plan
         .steps
         .iter()
@@ -522,6 +523,80 @@ async fn build_days(
     } else {
         RunOutcome::ChecksFailed
     };
+    Ok(())
+}
+
+/// Writes a `tiles` ledger entry for every tile partition the snapshots of `days` read
+/// whose raw files (or layout) differ from its latest entry: the tile was built from them.
+async fn record_tiles(
+    pipeline: &Pipeline,
+    out: &Location,
+    listings: &BTreeMap<String, Listing>,
+    layouts: &BTreeMap<String, daymark_engine::tiles::TileLayout>,
+    days: &[NaiveDate],
+    mode: KnowledgeOverride,
+    me: &RunIdentity,
+) -> Result<(), RunnerError> {
+    let latest = ledger::latest(out, Kind::Tiles).await?;
+    let mut needed: BTreeMap<&str, BTreeSet<NaiveDate>> = BTreeMap::new();
+    for day in days {
+        for (source, read) in daymark_engine::snapshot_query(pipeline, *day, mode).reads {
+            let (Some(listing), Some((name, _))) =
+                (listings.get(&source), layouts.get_key_value(&source))
+            else {
+                continue;
+            };
+            let set = needed.entry(name.as_str()).or_default();
+            for d in listing.days.keys() {
+                if read.first_day.is_none_or(|f| *d >= f) && *d <= read.last_day {
+                    set.insert(*d);
+                }
+            }
+        }
+    }
+    for (source, set) in needed {
+        let layout = &layouts[source];
+        let listing = &listings[source];
+        for d in set {
+            let rel = format!("tiles/{source}/{}/dt={d}/part-0.parquet", layout.hash);
+            let files = ledger::fingerprint_range(listing, Some(d), d);
+            let current = latest.get(&(d, source.to_string())).is_some_and(|e| {
+                e.output.as_deref() == Some(rel.as_str())
+                    && e.inputs.get(source).map(|i| &i.partitions) == Some(&files)
+            });
+            if current {
+                continue;
+            }
+            let path = child(&layout.dir(out), &[&format!("dt={d}"), "part-0.parquet"]);
+            let Ok(meta) = out.store.head(&path).await else {
+                continue; // no tile (the partition was not needed after all)
+            };
+            let file = daymark_store::DataFile {
+                path: meta.location.clone(),
+                size: meta.size,
+                modified: meta.last_modified,
+                etag: meta.e_tag.clone(),
+            };
+            let rows = daymark_store::read_footer(out, &file)
+                .await
+                .map(|f| f.rows)
+                .unwrap_or(0);
+            let mut entry = Entry::new(Kind::Tiles, d, source, pipeline, me);
+            entry.inputs.insert(
+                source.to_string(),
+                ledger::SourceInputs {
+                    knowledge: "all".into(),
+                    first_day: Some(d.to_string()),
+                    last_day: d.to_string(),
+                    partitions: files,
+                },
+            );
+            entry.rows = rows;
+            entry.bytes = meta.size;
+            entry.output = Some(rel);
+            ledger::write(out, &entry).await?;
+        }
+    }
     Ok(())
 }
 
