@@ -614,7 +614,11 @@ fn two_runs_at_once_only_one_writes() {
         "--out",
         out2.to_str().unwrap(),
     ];
-    let first = daymark().args(args2).stdout(Stdio::null()).spawn().unwrap();
+    let mut first = daymark().args(args2).stdout(Stdio::null()).spawn().unwrap();
+    // Start the waiting run once the first holds the lock (or has already finished).
+    while !out2.join("_lock/owner.json").exists() && first.try_wait().unwrap().is_none() {
+        std::thread::sleep(std::time::Duration::from_millis(10));
+    }
     let mut second_args = args2.to_vec();
     second_args.push("--wait");
     let second = daymark().args(&second_args).output().unwrap();
