@@ -311,3 +311,62 @@ impl Drop for LockGuard {
         self.renewer.abort();
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn run_as(pid: u32, host: &str) -> RunIdentity {
+        RunIdentity {
+            run_id: format!("test-{pid}"),
+            host: host.into(),
+            pid,
+            started: Utc::now(),
+        }
+    }
+
+    #[tokio::test]
+    async fn one_holder_then_takeover_after_the_lease() {
+        let dir = tempfile::tempdir().unwrap();
+        let out = daymark_store::resolve(dir.path().to_str().unwrap(), None).unwrap();
+        let me = RunIdentity::current();
+        let Acquire::Acquired(first, None) = acquire(&out, &me, "run", Duration::from_secs(60))
+            .await
+            .unwrap()
+        else {
+            panic!("a free lock is taken");
+        };
+        // Another live process on another host: held.
+        let other = run_as(1, "elsewhere");
+        match acquire(&out, &other, "run", Duration::from_secs(60))
+            .await
+            .unwrap()
+        {
+            Acquire::Held(info) => assert_eq!(info.owner, me.run_id),
+            Acquire::Acquired(..) => panic!("two holders"),
+        }
+        first.release().await.unwrap();
+        assert!(read(&out).await.unwrap().is_none());
+
+        // A lock whose lease has passed is taken over, and the run says so.
+        let old = run_as(1, "elsewhere");
+        let Acquire::Acquired(g, _) = acquire(&out, &old, "run", Duration::from_millis(1))
+            .await
+            .unwrap()
+        else {
+            panic!("free");
+        };
+        std::mem::forget(g); // as if the holder died: no release, no renewal
+        tokio::time::sleep(Duration::from_millis(20)).await;
+        let Acquire::Acquired(g, Some(msg)) = acquire(&out, &me, "run", Duration::from_secs(60))
+            .await
+            .unwrap()
+        else {
+            panic!("an expired lock is taken over");
+        };
+        assert!(msg.contains("lease ended"), "{msg}");
+        // The lock now names the run that took it over.
+        assert_eq!(read(&out).await.unwrap().unwrap().0.owner, me.run_id);
+        g.release().await.unwrap();
+    }
+}

@@ -497,3 +497,169 @@ pub fn matured_label_days(
         })
         .collect()
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::ledger::{Entry, Kind, RunIdentity};
+    use daymark_store::object_store::path::Path as StorePath;
+    use daymark_store::DataFile;
+
+    fn pipeline(expr: &str) -> Pipeline {
+        let text = format!(
+            "daymark: 1\nname: t\ntimezone: UTC\nkey: k\nsources:\n  s:\n    location: /nowhere\n    event_time: t\n    arrival_time: a\npopulation:\n  recent_activity:\n    source: s\n    within: 3d\nfeatures:\n  - name: n\n    source: s\n    agg: count\n    window: 2d\n  - name: v\n    source: s\n    agg: sum\n    expr: {expr}\n    window: 2d\n    fill: 0\n"
+        );
+        daymark_spec::load_str(&text, None).unwrap()
+    }
+
+    fn day(s: &str) -> NaiveDate {
+        s.parse().unwrap()
+    }
+
+    fn file(d: &str, name: &str, size: u64) -> DataFile {
+        DataFile {
+            path: StorePath::from(format!("s/dt={d}/{name}")),
+            size,
+            modified: chrono::DateTime::from_timestamp(1_700_000_000, 0).unwrap(),
+            etag: None,
+        }
+    }
+
+    /// Ten complete partitions, one file each.
+    fn listing() -> Listing {
+        let mut l = Listing::default();
+        for d in day("2026-03-01").iter_days().take(10) {
+            l.days
+                .insert(d, vec![file(&d.to_string(), "a.parquet", 100)]);
+            l.markers.insert(d, vec![complete::COMPLETE_MARKER.into()]);
+        }
+        l
+    }
+
+    /// Ledger entries as a run over `days` would write them.
+    fn built(
+        p: &Pipeline,
+        l: &BTreeMap<String, Listing>,
+        days: &[NaiveDate],
+        mode: KnowledgeOverride,
+    ) -> BTreeMap<NaiveDate, Entry> {
+        let run = RunIdentity::current();
+        days.iter()
+            .map(|d| {
+                let mut e = Entry::new(Kind::Snapshot, *d, scope_of(mode), p, &run);
+                e.inputs = inputs_of(p, l, *d, mode);
+                (*d, e)
+            })
+            .collect()
+    }
+
+    fn states(plan: &Plan) -> Vec<(String, &'static str)> {
+        plan.days
+            .iter()
+            .map(|d| (d.day.to_string(), d.state.name()))
+            .collect()
+    }
+
+    #[test]
+    fn new_built_pending_and_stale_days() {
+        let p = pipeline("1");
+        let mut l = BTreeMap::from([("s".to_string(), listing())]);
+        let (from, until) = (Some(day("2026-03-05")), Some(day("2026-03-12")));
+        // In UTC with a 00:00 cutoff, snapshot D needs partitions up to D-1.
+        let plan0 = plan(
+            &p,
+            &l,
+            &BTreeMap::new(),
+            &BTreeSet::new(),
+            None,
+            from,
+            until,
+            false,
+        );
+        let s = states(&plan0);
+        assert_eq!(s[0], ("2026-03-05".into(), "new"));
+        assert_eq!(s[6], ("2026-03-11".into(), "new"));
+        assert_eq!(s[7], ("2026-03-12".into(), "pending"));
+        assert!(plan0.days[7].state.reasons()[0].contains("dt=2026-03-11"));
+
+        let days: Vec<NaiveDate> = plan0.snapshot_days();
+        let ledger = built(&p, &l, &days, None);
+        let published: BTreeSet<NaiveDate> = days.iter().copied().collect();
+        let again = plan(&p, &l, &ledger, &published, None, from, until, false);
+        assert!(again.snapshot_days().is_empty());
+
+        // A late file in dt=2026-03-06 (as-known): nothing stale.
+        let part = l
+            .get_mut("s")
+            .unwrap()
+            .days
+            .get_mut(&day("2026-03-06"))
+            .unwrap();
+        part.push(file("2026-03-06", "b.parquet", 50));
+        let late = plan(&p, &l, &ledger, &published, None, from, until, false);
+        assert!(late.snapshot_days().is_empty(), "{:?}", states(&late));
+        // The same late file in event-time mode: the days whose window read dt=2026-03-06.
+        let et = Some(Knowledge::EventTime);
+        let ledger_et = built(
+            &p,
+            &{
+                let mut before = l.clone();
+                before
+                    .get_mut("s")
+                    .unwrap()
+                    .days
+                    .get_mut(&day("2026-03-06"))
+                    .unwrap()
+                    .pop();
+                before
+            },
+            &days,
+            et,
+        );
+        let late_et = plan(&p, &l, &ledger_et, &published, et, from, until, false);
+        // Snapshot D reads partitions D-3-1 .. D-1 (3-day population window, one day slack).
+        assert_eq!(
+            late_et.snapshot_days(),
+            vec![
+                day("2026-03-07"),
+                day("2026-03-08"),
+                day("2026-03-09"),
+                day("2026-03-10")
+            ]
+        );
+        assert!(late_et.days[2].state.reasons()[0].contains("dt=2026-03-06 (1 file(s) added)"));
+        // A changed file (history rewritten) makes as-known snapshots stale too.
+        l.get_mut("s")
+            .unwrap()
+            .days
+            .get_mut(&day("2026-03-06"))
+            .unwrap()[0]
+            .size = 101;
+        let rewritten = plan(&p, &l, &ledger, &published, None, from, until, false);
+        assert_eq!(rewritten.snapshot_days().len(), 4);
+        assert!(rewritten.days[2].state.reasons()[0].contains("1 file(s) changed"));
+    }
+
+    #[test]
+    fn a_changed_feature_is_named_and_a_missing_file_noticed() {
+        let p = pipeline("1");
+        let l = BTreeMap::from([("s".to_string(), listing())]);
+        let days = vec![day("2026-03-05"), day("2026-03-06")];
+        let ledger = built(&p, &l, &days, None);
+        let published: BTreeSet<NaiveDate> = [day("2026-03-05")].into();
+        let (from, until) = (Some(days[0]), Some(days[1]));
+        let changed = pipeline("2");
+        let plan1 = plan(&changed, &l, &ledger, &published, None, from, until, false);
+        assert_eq!(
+            plan1.days[0].state,
+            DayState::Stale(vec!["pipeline: feature(s) changed: v".into()])
+        );
+        assert_eq!(
+            plan1.days[1].state,
+            DayState::Stale(vec![
+                "pipeline: feature(s) changed: v".into(),
+                "output: the published snapshot is missing".into()
+            ])
+        );
+    }
+}
