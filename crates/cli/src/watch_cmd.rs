@@ -74,7 +74,13 @@ pub async fn watch_cmd(args: WatchArgs) -> Result<u8> {
     );
     let stop = Arc::new(AtomicBool::new(false));
     stop_on_signals(stop.clone());
-    let on = |e: Event| print_event(&log, e);
+    // A quiet poll says nothing; a plan is shown when it has work.
+    let on = |e: Event| match &e {
+        Event::Planned(p) if p.snapshot_days().is_empty() => {}
+        // Matured labels would be reported on every poll; `run` and `status` show them.
+        Event::Skipped { step: "labels", .. } => {}
+        _ => print_event(&log, e),
+    };
     let on_error = |e: &daymark_runner::RunnerError| {
         log.event(
             "error",
