@@ -392,7 +392,7 @@ pub(crate) fn load(path: &Path) -> Result<Pipeline, u8> {
     })
 }
 
-fn human_bytes(n: u64) -> String {
+pub(crate) fn human_bytes(n: u64) -> String {
     let units = ["B", "KiB", "MiB", "GiB", "TiB"];
     let mut x = n as f64;
     let mut u = 0;

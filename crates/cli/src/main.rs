@@ -7,6 +7,9 @@ mod labels_cmd;
 mod outcomes_cmd;
 mod report;
 mod report_cmd;
+mod run_cmd;
+mod status_cmd;
+mod watch_cmd;
 
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
@@ -113,6 +116,20 @@ enum Command {
         #[arg(long)]
         out: PathBuf,
     },
+    /// Do what is due: new snapshot days whose inputs are complete, stale days; exit codes
+    /// for schedulers (0 work done, 10 nothing due, 11 waiting for inputs, 12 lock held).
+    #[command(
+        after_help = "Example:\n  daymark run pipelines/demo.yaml\n  daymark run pipelines/demo.yaml --from 2026-02-01 --until 2026-04-30 --dry-run"
+    )]
+    Run(run_cmd::RunArgs),
+    /// Show which snapshot days are built, stale (and why), new or pending, from the ledger.
+    #[command(after_help = "Example:\n  daymark status pipelines/demo.yaml --json")]
+    Status(status_cmd::StatusArgs),
+    /// Keep running: poll the sources, run what is due, serve /health and /metrics.
+    #[command(
+        after_help = "Example:\n  daymark watch pipelines/demo.yaml --interval 30s --listen 127.0.0.1:9797"
+    )]
+    Watch(watch_cmd::WatchArgs),
     /// Print the JSON Schema of pipeline files (for editors).
     #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
     Schema,
@@ -128,6 +145,12 @@ pub mod exit {
     pub const FAILED: u8 = 1;
     /// A check configured to fail did fail; nothing was published for that day.
     pub const CHECK_FAILED: u8 = 3;
+    /// `run`: nothing was due.
+    pub const NOTHING_DUE: u8 = 10;
+    /// `run`: nothing could be done yet; inputs are not complete.
+    pub const WAITING: u8 = 11;
+    /// `run`: another run holds the output lock.
+    pub const LOCK_HELD: u8 = 12;
 }
 
 fn main() -> ExitCode {
@@ -163,6 +186,9 @@ fn main() -> ExitCode {
             Command::Outcomes(args) => outcomes_cmd::outcomes(args).await,
             Command::Audit { args, json } => audit_cmd::run(args, json).await,
             Command::Report { args, out } => report_cmd::run(args, &out).await,
+            Command::Run(args) => run_cmd::run(args).await,
+            Command::Status(args) => status_cmd::status(args).await,
+            Command::Watch(args) => watch_cmd::watch_cmd(args).await,
             Command::Schema => {
                 print!("{}", daymark_spec::json_schema());
                 Ok(exit::OK)
