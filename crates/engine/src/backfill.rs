@@ -557,6 +557,7 @@ pub fn range_query(
 /// in the footer, and rename. `on_day` is told of each published
 /// day as it goes. Days whose population is empty get an empty snapshot, as in a
 /// per-day build.
+#[allow(clippy::too_many_arguments)]
 pub async fn build_range(
     ctx: &SessionContext,
     pipeline: &Pipeline,
