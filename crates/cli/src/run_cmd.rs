@@ -200,6 +200,15 @@ pub fn print_event(log: &Report, e: Event) {
             || format!("{step}: skipped: {reason}"),
             json!({"step": step, "reason": reason}),
         ),
+        Event::Labels {
+            written,
+            rows,
+            pending,
+        } => log.event(
+            "labels",
+            || format!("labels: {written} day(s) written ({rows} rows); {pending} built day(s) not matured yet"),
+            json!({"written": written, "rows": rows, "pending": pending}),
+        ),
         Event::Stopping => log.event(
             "stopping",
             || "stop requested: stopping after the current step".to_string(),

@@ -951,3 +951,79 @@ fn watch_publishes_newly_landed_days_and_stops_on_sigterm() {
     );
     assert!(!out.join("_lock/owner.json").exists());
 }
+
+#[test]
+fn a_run_back_fills_matured_labels_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let world = full_world(dir.path());
+    let out = dir.path().join("out");
+    let pipeline = dir.path().join("p.yaml");
+    // The small pipeline plus the subscription log and a churn label of 5 days + 2 days grace.
+    let text = pipeline_text(&world, &out, "seconds_played / 60.0").replace(
+        "population:",
+        &format!(
+            "  subscriptions:\n    location: {}/subscriptions\n    event_time: changed_at\n    arrival_time: arrived_at\n    dedupe_on: [change_id]\npopulation:",
+            world.display()
+        ),
+    ) + "label:\n  name: churned_5d\n  source: subscriptions\n  horizon: 5d\n  grace: 2d\n  ended: kind = 'ended'\n  resumed: kind IN ('resumed', 'started')\n";
+    std::fs::write(&pipeline, text).unwrap();
+    let p = pipeline.to_str().unwrap();
+    let args = [
+        "run",
+        p,
+        "--from",
+        "2026-03-20",
+        "--until",
+        "2026-03-28",
+        "--log-format",
+        "json",
+    ];
+    let first = run(&args);
+    assert_eq!(first.code, Some(0), "{}\n{}", first.stdout, first.stderr);
+    // Every partition up to 2026-03-30 (UTC) carries its completeness marker, so the label
+    // of day D (window up to the cutoff of D + 7, 00:00 Chicago = 05:00 UTC of D + 7) has
+    // matured exactly for D + 7 <= 2026-03-30: the days 03-20 to 03-23.
+    let labelled: BTreeSet<String> = std::fs::read_dir(out.join("labels"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.starts_with("dt="))
+        .collect();
+    let expected: BTreeSet<String> = ["20", "21", "22", "23"]
+        .iter()
+        .map(|d| format!("dt=2026-03-{d}"))
+        .collect();
+    assert_eq!(labelled, expected);
+    let ev = events(&first);
+    let labels = ev.iter().find(|e| e["event"] == "labels").unwrap();
+    assert_eq!(labels["written"], 4, "{labels}");
+    assert_eq!(labels["pending"], 5, "{labels}");
+    // One label row per snapshot row, and one ledger entry per label file.
+    for d in &expected {
+        let snap = read_rows(&out.join("snapshots").join(d).join("part-0.parquet")).unwrap();
+        let lab = read_rows(&out.join("labels").join(d).join("part-0.parquet")).unwrap();
+        assert_eq!(snap.len(), lab.len(), "{d}");
+    }
+    let entries: usize = std::fs::read_dir(out.join("_ledger/labels"))
+        .unwrap()
+        .map(|d| std::fs::read_dir(d.unwrap().path()).unwrap().count())
+        .sum();
+    assert_eq!(entries, 4);
+    // Nothing is due right after: exit 10, no file rewritten.
+    let before = std::fs::metadata(out.join("labels/dt=2026-03-20/part-0.parquet"))
+        .unwrap()
+        .modified()
+        .unwrap();
+    let second = run(&args);
+    assert_eq!(
+        second.code,
+        Some(10),
+        "{}\n{}",
+        second.stdout,
+        second.stderr
+    );
+    let after = std::fs::metadata(out.join("labels/dt=2026-03-20/part-0.parquet"))
+        .unwrap()
+        .modified()
+        .unwrap();
+    assert_eq!(before, after);
+}

@@ -92,6 +92,15 @@ pub enum Event<'a> {
         /// Why.
         reason: String,
     },
+    /// Labels of matured snapshot days were back-filled.
+    Labels {
+        /// Label files written by this run.
+        written: usize,
+        /// Label rows written.
+        rows: u64,
+        /// Built snapshot days whose labels have not matured yet.
+        pending: usize,
+    },
     /// A stop was asked for; the run stops after the current step.
     Stopping,
 }
@@ -219,7 +228,7 @@ pub async fn observe(
 pub async fn make_plan(pipeline: &Pipeline, opts: &RunOptions) -> Result<Plan, RunnerError> {
     let out = output_location(pipeline, opts.out.as_deref())?;
     let seen = observe(pipeline, &out, opts.mode).await?;
-    Ok(plan::plan(
+    let mut plan = plan::plan(
         pipeline,
         &seen.listings,
         &seen.latest,
@@ -228,7 +237,48 @@ pub async fn make_plan(pipeline: &Pipeline, opts: &RunOptions) -> Result<Plan, R
         opts.from,
         opts.until,
         true,
-    ))
+    );
+    // Matured days are due for labels only when their label file is missing or older than
+    // the snapshot (or the snapshot is about to be rebuilt): re-runs do nothing.
+    if plan.steps.iter().any(|s| matches!(s, Step::Labels { .. })) {
+        let store_err = |e: daymark_labels::LabelError| RunnerError::Store {
+            path: out.display(),
+            reason: e.to_string(),
+        };
+        let snapshots = daymark_labels::list_partitions(&out, snapshots_dir(opts.mode))
+            .await
+            .map_err(store_err)?;
+        let labels = daymark_labels::list_partitions(&out, daymark_labels::labels_dir(opts.mode))
+            .await
+            .map_err(store_err)?;
+        let rebuilt: BTreeSet<NaiveDate> = plan.snapshot_days().into_iter().collect();
+        for step in plan.steps.iter_mut() {
+            if let Step::Labels { days } = step {
+                days.retain(|d| {
+                    rebuilt.contains(d)
+                        || match (snapshots.get(d), labels.get(d)) {
+                            (Some(s), Some(l)) => l.last_modified < s.last_modified,
+                            (Some(_), None) => true,
+                            (None, _) => false,
+                        }
+                });
+            }
+        }
+        plan.steps
+            .retain(|s| !matches!(s, Step::Labels { days } if days.is_empty()));
+    }
+    Ok(plan)
+}
+
+/// Snapshot days whose labels are due in `plan`.
+fn labels_due(plan: &Plan) -> usize {
+    plan.steps
+        .iter()
+        .map(|s| match s {
+            Step::Labels { days } => days.len(),
+            _ => 0,
+        })
+        .sum()
 }
 
 /// Removes everything in `<out>/_staging/`: files of runs that were killed. Only called
@@ -267,7 +317,7 @@ pub async fn clean_staging(out: &Location) -> Result<usize, RunnerError> {
 }
 
 fn outcome_of_plan(plan: &Plan) -> RunOutcome {
-    if !plan.snapshot_days().is_empty() {
+    if !plan.snapshot_days().is_empty() || labels_due(plan) > 0 {
         RunOutcome::Done
     } else if plan.pending() > 0 {
         RunOutcome::Waiting
@@ -294,18 +344,8 @@ pub async fn run_once(
     let pipeline = load_pipeline(&opts.pipeline)?;
     let out = output_location(&pipeline, opts.out.as_deref())?;
     let first = make_plan(&pipeline, opts).await?;
-    if opts.dry_run || first.snapshot_days().is_empty() {
+    if opts.dry_run || (first.snapshot_days().is_empty() && labels_due(&first) == 0) {
         on(Event::Planned(&first));
-        if let Some(Step::Labels { days }) = first
-            .steps
-            .iter()
-            .find(|s| matches!(s, Step::Labels { .. }))
-        {
-            on(Event::Skipped {
-                step: "labels",
-                reason: labels_unavailable(days.len()),
-            });
-        }
         let outcome = outcome_of_plan(&first);
         let outcome = if opts.dry_run || outcome != RunOutcome::Done {
             outcome
@@ -340,10 +380,6 @@ pub async fn run_once(
     let s = result?;
     released?;
     Ok(s)
-}
-
-fn labels_unavailable(days: usize) -> String {
-    format!("{days} snapshot day(s) have matured labels; label back-fill is not part of this daymark build yet")
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -386,12 +422,14 @@ async fn locked(
         )
         .await?;
     }
-    for step in &plan.steps {
-        if let Step::Labels { days } = step {
-            on(Event::Skipped {
-                step: "labels",
-                reason: labels_unavailable(days.len()),
-            });
+    let stopped = summary.outcome == RunOutcome::Stopped;
+    if labels_due(&plan) > 0 && !stopped {
+        if guard.lost() {
+            return Err(RunnerError::LockLost(guard.info().describe()));
+        }
+        back_fill_labels(pipeline, out, opts, me, on).await?;
+        if days.is_empty() {
+            summary.outcome = RunOutcome::Done;
         }
     }
     summary.plan = Some(plan);
@@ -464,6 +502,8 @@ async fn build_days(
         })
         .collect();
     let scope = plan::scope_of(opts.mode);
+    // Population change and drift checks on every snapshot, as `daymark build` runs them.
+    let checks = daymark_audit::quality::DailyChecks::new(pipeline, opts.mode);
     for (i, day) in days.iter().enumerate() {
         if stop.load(Ordering::SeqCst) {
             on(Event::Stopping);
@@ -477,9 +517,17 @@ async fn build_days(
             daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, *day, opts.mode);
         let mut entry = Entry::new(Kind::Snapshot, *day, scope, pipeline, me);
         entry.inputs = plan::inputs_of(pipeline, &listings, *day, opts.mode);
-        let result =
-            daymark_engine::build::build_day(&ctx, pipeline, out, *day, opts.mode, &query.sql)
-                .await;
+        let result = daymark_engine::build::build_day_checked(
+            &ctx,
+            pipeline,
+            out,
+            *day,
+            opts.mode,
+            &query.sql,
+            Some(&layouts),
+            Some(&checks),
+        )
+        .await;
         entry.finished = chrono::Utc::now().to_rfc3339();
         match result {
             Ok(report) => {
@@ -523,6 +571,52 @@ async fn build_days(
     } else {
         RunOutcome::ChecksFailed
     };
+    Ok(())
+}
+
+/// Back-fills the labels of every built snapshot whose label window has closed (the
+/// labels crate decides maturity from the sources' watermarks and skips files that are
+/// current), with a `labels` ledger entry per file written.
+async fn back_fill_labels(
+    pipeline: &Pipeline,
+    out: &Location,
+    opts: &RunOptions,
+    me: &RunIdentity,
+    on: &(dyn Fn(Event) + Sync),
+) -> Result<(), RunnerError> {
+    let reports = daymark_engine::inspect_sources(pipeline).await;
+    let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
+        memory_limit: opts.memory_limit,
+        target_partitions: None,
+    })?;
+    daymark_engine::register_sources(&ctx, pipeline, &reports).await?;
+    let watermarks = daymark_labels::source_watermarks(pipeline, &reports);
+    let result = daymark_labels::backfill(&ctx, pipeline, &watermarks, out, opts.mode, opts.until)
+        .await
+        .map_err(|e| RunnerError::Store {
+            path: out.display(),
+            reason: e.to_string(),
+        })?;
+    let scope = plan::scope_of(opts.mode);
+    let (mut written, mut rows) = (0, 0);
+    for d in result.labeled.iter().filter(|d| d.written) {
+        let mut entry = Entry::new(Kind::Labels, d.day, scope, pipeline, me);
+        entry.rows = d.rows;
+        entry.finished = chrono::Utc::now().to_rfc3339();
+        entry.output = Some(format!(
+            "{}/dt={}/part-0.parquet",
+            daymark_labels::labels_dir(opts.mode),
+            d.day
+        ));
+        ledger::write(out, &entry).await?;
+        written += 1;
+        rows += d.rows;
+    }
+    on(Event::Labels {
+        written,
+        rows,
+        pending: result.pending.len(),
+    });
     Ok(())
 }
 
