@@ -42,6 +42,43 @@ fn num(d: NaiveDate) -> i64 {
     (d - NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch")).num_days()
 }
 
+/// The first snapshot day (a day number) on which a tile row is visible: the day after its
+/// event day, and in as-known mode also after its arrival day (NULL without an arrival).
+pub(crate) fn first_visible_day_sql(knowledge: Knowledge) -> String {
+    let tn = "CAST(__t AS BIGINT)";
+    match knowledge {
+        Knowledge::AsKnown => format!(
+            "CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"
+        ),
+        Knowledge::EventTime => format!("{tn} + 1"),
+    }
+}
+
+/// `columns` of the rows of tile table `table` (partitions `first..=last`) visible by day
+/// number `until`, with their event day `__tn` and first visible day `__vn`.
+fn visible_tile_rows(
+    table: &str,
+    columns: &str,
+    first: Option<NaiveDate>,
+    last: NaiveDate,
+    knowledge: Knowledge,
+    until: i64,
+) -> String {
+    let mut conds = vec![
+        "__key IS NOT NULL".to_string(),
+        "__t IS NOT NULL".to_string(),
+        format!("dt <= {}", literal(&last.to_string())),
+    ];
+    if let Some(f) = first {
+        conds.push(format!("dt >= {}", literal(&f.to_string())));
+    }
+    format!(
+        "SELECT * FROM (SELECT {columns}, CAST(__t AS BIGINT) AS __tn, {} AS __vn FROM {table} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {until}",
+        first_visible_day_sql(knowledge),
+        conds.join(" AND ")
+    )
+}
+
 /// Column types of the registered tile tables, by (source, column).
 pub type TileTypes = HashMap<(String, String), DataType>;
 
@@ -120,26 +157,18 @@ pub fn range_query(
         let Some(read) = reads_last.get(name) else {
             continue;
         };
-        let mut conds = vec![
-            "__key IS NOT NULL".to_string(),
-            "__t IS NOT NULL".to_string(),
-            format!("dt <= {}", literal(&read.last_day.to_string())),
-        ];
-        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
-            conds.push(format!("dt >= {}", literal(&f.to_string())));
-        }
-        let tn = "CAST(__t AS BIGINT)";
-        let vn = match read.knowledge {
-            Knowledge::AsKnown => format!(
-                "CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"
-            ),
-            Knowledge::EventTime => format!("{tn} + 1"),
-        };
+        let first_day = reads_first.get(name).and_then(|r| r.first_day);
         ctes.push(format!(
-            "{} AS (SELECT * FROM (SELECT *, {tn} AS __tn, {vn} AS __vn FROM {} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {nn})",
+            "{} AS ({})",
             ident(&format!("{name}__r")),
-            ident(&l.table()),
-            conds.join(" AND ")
+            visible_tile_rows(
+                &ident(&l.table()),
+                "*",
+                first_day,
+                read.last_day,
+                read.knowledge,
+                nn
+            )
         ));
         // Ranks for first/last values, in the naive path's order.
         let has_arrival = pipeline.sources[name].spec.arrival_time.is_some();
@@ -406,25 +435,14 @@ pub fn range_query(
                             "SELECT __key, __tn AS __g, __tn, __vn FROM {rows} WHERE __c{i} > 0"
                         )
                     } else {
-                        let l = &layouts[name];
                         let read = &reads_last[name];
-                        let mut conds = vec![
-                            "__key IS NOT NULL".to_string(),
-                            "__t IS NOT NULL".to_string(),
-                            format!("dt <= {}", literal(&read.last_day.to_string())),
-                        ];
-                        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
-                            conds.push(format!("dt >= {}", literal(&f.to_string())));
-                        }
-                        let tn = "CAST(__t AS BIGINT)";
-                        let vn = match read.knowledge {
-                            Knowledge::AsKnown => format!("CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"),
-                            Knowledge::EventTime => format!("{tn} + 1"),
-                        };
-                        format!(
-                            "SELECT * FROM (SELECT __key, __v AS __g, {tn} AS __tn, {vn} AS __vn FROM {} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {nn}",
-                            ident(&l.distinct_table(i)),
-                            conds.join(" AND ")
+                        visible_tile_rows(
+                            &ident(&layouts[name].distinct_table(i)),
+                            "__key, __v AS __g",
+                            reads_first.get(name).and_then(|r| r.first_day),
+                            read.last_day,
+                            read.knowledge,
+                            nn,
                         )
                     };
                     let body = match w {
@@ -566,7 +584,7 @@ pub async fn build_range(
     days: &[NaiveDate],
     mode: KnowledgeOverride,
     staged_check: Option<&dyn StagedCheck>,
-    mut on_day: impl FnMut(&DayReport),
+    on_day: impl FnMut(&DayReport),
 ) -> Result<Vec<DayReport>, BuildError> {
     let (Some(&first), Some(&last)) = (days.first(), days.last()) else {
         return Ok(Vec::new());
@@ -583,47 +601,20 @@ pub async fn build_range(
     let date_col = schema
         .index_of("snapshot_date")
         .map_err(|e| engine(first)(e.into()))?;
-    let mut reports = Vec::new();
+    let mut publisher = Publisher {
+        ctx,
+        pipeline,
+        out,
+        mode,
+        schema,
+        provenance,
+        staged_check,
+        on_day,
+        reports: Vec::new(),
+    };
     let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();
     let mut current: Option<(DayWriter, Instant)> = None;
     let epoch = NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch");
-
-    #[allow(clippy::too_many_arguments)]
-    async fn close(
-        w: (DayWriter, Instant),
-        ctx: &SessionContext,
-        provenance: &BTreeMap<NaiveDate, crate::provenance::Provenance>,
-        staged_check: Option<&dyn StagedCheck>,
-        pipeline: &Pipeline,
-        reports: &mut Vec<DayReport>,
-        on_day: &mut impl FnMut(&DayReport),
-    ) -> Result<(), BuildError> {
-        let (writer, t0) = w;
-        let day = writer.day();
-        let metadata = provenance
-            .get(&day)
-            .map(|p| {
-                vec![(
-                    crate::provenance::METADATA_KEY.to_string(),
-                    serde_json::to_string(p).unwrap_or_default(),
-                )]
-            })
-            .unwrap_or_default();
-        let (rows, bytes, warnings) = writer
-            .finish_with(ctx, Some(pipeline), &metadata, staged_check)
-            .await?;
-        let r = DayReport {
-            day,
-            rows,
-            bytes,
-            seconds: t0.elapsed().as_secs_f64(),
-            warnings,
-        };
-        on_day(&r);
-        reports.push(r);
-        Ok(())
-    }
-
     let streamed: Result<(), BuildError> = async {
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine(first))?;
@@ -642,41 +633,14 @@ pub async fn build_range(
                 }
                 if current.as_ref().map(|(w, _)| w.day()) != Some(d) {
                     if let Some(w) = current.take() {
-                        close(
-                            w,
-                            ctx,
-                            &provenance,
-                            staged_check,
-                            pipeline,
-                            &mut reports,
-                            &mut on_day,
-                        )
-                        .await?;
+                        publisher.close(w).await?;
                     }
                     // Days before `d` with no rows at all still get a (empty) snapshot.
-                    while let Some(&p) = pending.peek() {
-                        if p >= d {
-                            break;
-                        }
-                        pending.next();
-                        let w =
-                            DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
-                        close(
-                            (w, Instant::now()),
-                            ctx,
-                            &provenance,
-                            staged_check,
-                            pipeline,
-                            &mut reports,
-                            &mut on_day,
-                        )
-                        .await?;
+                    while let Some(p) = pending.next_if(|p| *p < d) {
+                        publisher.empty(p).await?;
                     }
                     pending.next();
-                    current = Some((
-                        DayWriter::new(out, snapshot_path(out, mode, d), d, schema.clone())?,
-                        Instant::now(),
-                    ));
+                    current = Some(publisher.open(d)?);
                 }
                 let slice: RecordBatch = batch.slice(start, end - start);
                 if let Some((w, _)) = current.as_mut() {
@@ -697,29 +661,70 @@ pub async fn build_range(
         return Err(e);
     }
     if let Some(w) = current.take() {
-        close(
-            w,
-            ctx,
-            &provenance,
-            staged_check,
-            pipeline,
-            &mut reports,
-            &mut on_day,
-        )
-        .await?;
+        publisher.close(w).await?;
     }
     for p in pending {
-        let w = DayWriter::new(out, snapshot_path(out, mode, p), p, schema.clone())?;
-        close(
-            (w, Instant::now()),
-            ctx,
-            &provenance,
-            staged_check,
-            pipeline,
-            &mut reports,
-            &mut on_day,
-        )
-        .await?;
+        publisher.empty(p).await?;
     }
-    Ok(reports)
+    Ok(publisher.reports)
+}
+
+/// Publishes the per-day files of a range, in date order: provenance into the footer,
+/// checks, rename, then tells `on_day`.
+struct Publisher<'a, F: FnMut(&DayReport)> {
+    ctx: &'a SessionContext,
+    pipeline: &'a Pipeline,
+    out: &'a Location,
+    mode: KnowledgeOverride,
+    schema: datafusion::arrow::datatypes::SchemaRef,
+    provenance: BTreeMap<NaiveDate, crate::provenance::Provenance>,
+    staged_check: Option<&'a dyn StagedCheck>,
+    on_day: F,
+    reports: Vec<DayReport>,
+}
+
+impl<F: FnMut(&DayReport)> Publisher<'_, F> {
+    /// A staging file for snapshot `day`.
+    fn open(&self, day: NaiveDate) -> Result<(DayWriter, Instant), BuildError> {
+        let path = snapshot_path(self.out, self.mode, day);
+        Ok((
+            DayWriter::new(self.out, path, day, self.schema.clone())?,
+            Instant::now(),
+        ))
+    }
+
+    /// Checks and publishes a written day.
+    async fn close(&mut self, (writer, t0): (DayWriter, Instant)) -> Result<(), BuildError> {
+        let day = writer.day();
+        let metadata: Vec<(String, String)> = self
+            .provenance
+            .get(&day)
+            .map(|p| {
+                (
+                    crate::provenance::METADATA_KEY.to_string(),
+                    serde_json::to_string(p).unwrap_or_default(),
+                )
+            })
+            .into_iter()
+            .collect();
+        let (rows, bytes, warnings) = writer
+            .finish_with(self.ctx, Some(self.pipeline), &metadata, self.staged_check)
+            .await?;
+        let r = DayReport {
+            day,
+            rows,
+            bytes,
+            seconds: t0.elapsed().as_secs_f64(),
+            warnings,
+        };
+        (self.on_day)(&r);
+        self.reports.push(r);
+        Ok(())
+    }
+
+    /// Publishes an empty snapshot for a day whose population is empty.
+    async fn empty(&mut self, day: NaiveDate) -> Result<(), BuildError> {
+        let w = self.open(day)?;
+        self.close(w).await
+    }
 }

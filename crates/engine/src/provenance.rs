@@ -236,13 +236,7 @@ pub async fn range_provenance(
         if values.is_empty() {
             continue;
         }
-        let tn = "CAST(__t AS BIGINT)";
-        let vn = match read.knowledge {
-            Knowledge::AsKnown => format!(
-                "CASE WHEN __a IS NULL THEN NULL WHEN CAST(__a AS BIGINT) > {tn} THEN CAST(__a AS BIGINT) + 1 ELSE {tn} + 1 END"
-            ),
-            Knowledge::EventTime => format!("{tn} + 1"),
-        };
+        let vn = crate::backfill::first_visible_day_sql(read.knowledge);
         let ts = |c: &str| format!("arrow_cast(MAX({c}), 'Timestamp(Microsecond, Some(\"UTC\"))')");
         let arrival = if has_arrival {
             ts("g.__mar")

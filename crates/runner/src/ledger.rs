@@ -265,6 +265,21 @@ pub async fn write(out: &Location, entry: &Entry) -> Result<StorePath, RunnerErr
     Ok(path)
 }
 
+/// Every object under `dir` in the output store.
+pub(crate) async fn list_all(
+    out: &Location,
+    dir: &StorePath,
+) -> Result<Vec<daymark_store::object_store::ObjectMeta>, RunnerError> {
+    out.store
+        .list(Some(dir))
+        .try_collect()
+        .await
+        .map_err(|e| RunnerError::Store {
+            path: dir.to_string(),
+            reason: e.to_string(),
+        })
+}
+
 /// The latest entry of each (date, scope) of `kind`.
 ///
 /// One listing of the ledger folder, then one read per (date, scope): the names sort by
@@ -274,15 +289,7 @@ pub async fn latest(
     kind: Kind,
 ) -> Result<BTreeMap<(NaiveDate, String), Entry>, RunnerError> {
     let dir = ledger_dir(out, kind);
-    let metas: Vec<_> = out
-        .store
-        .list(Some(&dir))
-        .try_collect()
-        .await
-        .map_err(|e| RunnerError::Store {
-            path: dir.to_string(),
-            reason: e.to_string(),
-        })?;
+    let metas = list_all(out, &dir).await?;
     let skip = dir.parts().count();
     let mut newest: BTreeMap<(NaiveDate, String), (String, StorePath)> = BTreeMap::new();
     for m in metas {

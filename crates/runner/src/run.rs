@@ -18,7 +18,6 @@ use daymark_engine::tiles::TileStats;
 use daymark_spec::Pipeline;
 use daymark_store::object_store::ObjectStoreExt;
 use daymark_store::{Listing, Location};
-use futures::TryStreamExt;
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -190,15 +189,7 @@ pub async fn observe(
         .map(|((d, _), e)| (d, e))
         .collect();
     let dir = child(&out.prefix, &[snapshots_dir(mode)]);
-    let files: Vec<_> = out
-        .store
-        .list(Some(&dir))
-        .try_collect()
-        .await
-        .map_err(|e| RunnerError::Store {
-            path: dir.to_string(),
-            reason: e.to_string(),
-        })?;
+    let files = ledger::list_all(out, &dir).await?;
     let skip = dir.parts().count();
     let published = files
         .iter()
@@ -299,15 +290,7 @@ pub async fn clean_staging(out: &Location) -> Result<usize, RunnerError> {
         }
         return Ok(removed);
     }
-    let files: Vec<_> = out
-        .store
-        .list(Some(&dir))
-        .try_collect()
-        .await
-        .map_err(|e| RunnerError::Store {
-            path: dir.to_string(),
-            reason: e.to_string(),
-        })?;
+    let files = ledger::list_all(out, &dir).await?;
     for m in files {
         if out.store.delete(&m.location).await.is_ok() {
             removed += 1;
