@@ -25,6 +25,7 @@
 //! (`sql.rs`) stays the oracle: `tests/tiled_vs_naive.rs` compares every cell.
 
 use crate::build::{snapshot_path, BuildError, DayReport, DayWriter, StagedCheck};
+use crate::functions::{RUNNING_MAX, RUNNING_MIN, RUNNING_SUM};
 use crate::sql::{feature_column, finish, ident, literal, KnowledgeOverride};
 use crate::tiles::TileLayout;
 use chrono::NaiveDate;
@@ -215,9 +216,9 @@ pub fn range_query(
                 "__pop_rows AS (SELECT __key, __vn, __ps, row_number() OVER (PARTITION BY __key ORDER BY {order}) AS __prk FROM {})",
                 rows_of(&s.source)
             ));
-            ctes.push(
-                "__pop_runs AS (SELECT __key, __vn AS __from, lead(__vn) OVER (PARTITION BY __key ORDER BY __vn) AS __next, MAX(__prk) OVER (PARTITION BY __key ORDER BY __vn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __prk FROM (SELECT __key, __vn, MAX(__prk) AS __prk FROM __pop_rows GROUP BY __key, __vn))".to_string(),
-            );
+            ctes.push(format!(
+                "__pop_runs AS (SELECT __key, __vn AS __from, lead(__vn) OVER (PARTITION BY __key ORDER BY __vn) AS __next, {RUNNING_MAX}(__prk) OVER (PARTITION BY __key ORDER BY __vn) AS __prk FROM (SELECT __key, __vn, MAX(__prk) AS __prk FROM __pop_rows GROUP BY __key, __vn))"
+            ));
             ctes.push(format!(
                 "__pop_spans AS (SELECT r.__key, {} FROM __pop_runs r JOIN __pop_rows x ON x.__key = r.__key AND x.__prk = r.__prk WHERE x.__ps IN ({}))",
                 span("r.__from", "r.__next"),
@@ -233,7 +234,7 @@ pub fn range_query(
                 None => format!("SELECT __key, __vn AS __dn, __pc AS __x FROM {rows} WHERE __pc > 0"),
             };
             ctes.push(format!(
-                "__pop_runs AS (SELECT __key, __dn AS __from, lead(__dn) OVER (PARTITION BY __key ORDER BY __dn) AS __next, SUM(__x) OVER (PARTITION BY __key ORDER BY __dn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __n FROM (SELECT __key, __dn, SUM(__x) AS __x FROM ({delta}) GROUP BY __key, __dn))"
+                "__pop_runs AS (SELECT __key, __dn AS __from, lead(__dn) OVER (PARTITION BY __key ORDER BY __dn) AS __next, {RUNNING_SUM}(__x) OVER (PARTITION BY __key ORDER BY __dn) AS __n FROM (SELECT __key, __dn, SUM(__x) AS __x FROM ({delta}) GROUP BY __key, __dn))"
             ));
             ctes.push(format!(
                 "__pop_spans AS (SELECT __key, {} FROM __pop_runs WHERE __n > 0)",
@@ -255,8 +256,14 @@ pub fn range_query(
         "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
     ];
     let mut joins = Vec::new();
-    let cum =
-        "OVER (PARTITION BY __key ORDER BY __dn ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW)";
+    // Running values per key in day order (see `functions.rs`); after the GROUP BY below
+    // there is one row per (key, day), so the order has no ties.
+    let cum = "OVER (PARTITION BY __key ORDER BY __dn)";
+    let run = |f: &str| match f {
+        "SUM" => RUNNING_SUM,
+        "MIN" => RUNNING_MIN,
+        _ => RUNNING_MAX,
+    };
     let frame = |w: u32| {
         format!(
             "OVER (PARTITION BY __key ORDER BY __dn RANGE BETWEEN {} PRECEDING AND CURRENT ROW)",
@@ -321,7 +328,7 @@ pub fn range_query(
                             .or_default()
                             .insert(format!("__xc{i}"), format!("-__c{i}"));
                     }
-                    windows.push(format!("SUM(__xc{i}) {cum} AS __c{i}"));
+                    windows.push(format!("{RUNNING_SUM}(__xc{i}) {cum} AS __c{i}"));
                     format!("p.__c{i}")
                 }
                 Aggregation::Sum | Aggregation::Mean => {
@@ -336,8 +343,8 @@ pub fn range_query(
                         m.insert(format!("__xs{i}"), format!("-{}", dec(&format!("__s{i}"))));
                         m.insert(format!("__xn{i}"), format!("-__n{i}"));
                     }
-                    windows.push(format!("SUM(__xs{i}) {cum} AS __s{i}"));
-                    windows.push(format!("SUM(__xn{i}) {cum} AS __n{i}"));
+                    windows.push(format!("{RUNNING_SUM}(__xs{i}) {cum} AS __s{i}"));
+                    windows.push(format!("{RUNNING_SUM}(__xn{i}) {cum} AS __n{i}"));
                     col_types.insert(
                         format!("__xs{i}"),
                         if float_sum {
@@ -396,7 +403,7 @@ pub fn range_query(
                         }
                         None => {
                             plus.cols.insert(format!("__xm{i}"), value.clone());
-                            windows.push(format!("{func}(__xm{i}) {cum} AS __m{i}"));
+                            windows.push(format!("{}(__xm{i}) {cum} AS __m{i}", run(func)));
                             after.push(format!("__m{i} AS __r{i}"));
                         }
                     }
@@ -424,7 +431,7 @@ pub fn range_query(
                     } else {
                         "MAX"
                     };
-                    windows.push(format!("{func}(__xt{i}) {cum} AS __t{i}"));
+                    windows.push(format!("{}(__xt{i}) {cum} AS __t{i}", run(func)));
                     format!("p.__dn - p.__t{i}")
                 }
                 Aggregation::ActiveDays | Aggregation::CountDistinct => {
@@ -453,7 +460,7 @@ pub fn range_query(
                         ),
                         Some(w) => format!(
                             "SELECT __key, MIN(__s) AS __s, MAX(__e) AS __e FROM (
-                               SELECT *, SUM(__new) OVER (PARTITION BY __key, __g ORDER BY __s, __e ROWS BETWEEN UNBOUNDED PRECEDING AND CURRENT ROW) AS __island FROM (
+                               SELECT *, {RUNNING_SUM}(__new) OVER (PARTITION BY __key, __g ORDER BY __s, __e) AS __island FROM (
                                  SELECT *, CASE WHEN MAX(__e) OVER (PARTITION BY __key, __g ORDER BY __s, __e ROWS BETWEEN UNBOUNDED PRECEDING AND 1 PRECEDING) >= __s - 1 THEN 0 ELSE 1 END AS __new
                                  FROM (SELECT __key, __g, __vn AS __s, __tn + {w} AS __e FROM ({src}) WHERE __vn <= __tn + {w})))
                              GROUP BY __key, __g, __island"
@@ -474,7 +481,7 @@ pub fn range_query(
                             cols: BTreeMap::from([(col.clone(), "CAST(-1 AS BIGINT)".to_string())]),
                         });
                     }
-                    windows.push(format!("SUM({col}) {cum} AS __d{i}"));
+                    windows.push(format!("{RUNNING_SUM}({col}) {cum} AS __d{i}"));
                     format!("p.__d{i}")
                 }
             };
@@ -537,9 +544,15 @@ pub fn range_query(
     for w in &windows {
         if let (Some(open), Some(close)) = (w.find('('), w.find(')')) {
             if w.contains(" OVER ") {
+                let func = match &w[..open] {
+                    RUNNING_SUM => "SUM",
+                    RUNNING_MIN => "MIN",
+                    RUNNING_MAX => "MAX",
+                    other => other,
+                };
                 combine
                     .entry(w[open + 1..close].to_string())
-                    .or_insert_with(|| w[..open].to_string());
+                    .or_insert_with(|| func.to_string());
             }
         }
     }

@@ -4,6 +4,7 @@
 //! - [`check`]: check a pipeline against the sources' real schemas (columns, types, filters).
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
+//! - [`functions`]: daymark's running-sum/min/max window functions and their plan codec.
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
@@ -14,6 +15,7 @@
 pub mod backfill;
 pub mod build;
 pub mod check;
+pub mod functions;
 pub mod provenance;
 pub mod session;
 pub mod sources;

@@ -16,7 +16,8 @@ pub struct EngineOptions {
     pub target_partitions: Option<usize>,
 }
 
-/// A session with the given limits. Spill files go to the system's temporary folder.
+/// A session with the given limits and daymark's window functions
+/// ([`crate::functions`]). Spill files go to the system's temporary folder.
 pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     let mut config = SessionConfig::new();
     // Read strings as plain Utf8 so snapshots have the same column types whichever path
@@ -34,10 +35,9 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     if let Some(limit) = opts.memory_limit {
         runtime = runtime.with_memory_limit(limit, 1.0);
     }
-    Ok(SessionContext::new_with_config_rt(
-        config,
-        Arc::new(runtime.build()?),
-    ))
+    let ctx = SessionContext::new_with_config_rt(config, Arc::new(runtime.build()?));
+    crate::functions::register(&ctx);
+    Ok(ctx)
 }
 
 /// Parses sizes such as `2GiB`, `512MiB`, `1.5GB`, `1000000`.

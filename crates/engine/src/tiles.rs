@@ -1,8 +1,8 @@
 //! Tiles: per key, per day partial aggregates of a source, the reuse layer.
 //!
-//! One tile file is built per source day partition (`dt=E`) and holds, for every
-//! (key, event day t, arrival day a), the partial aggregates of every feature that reads
-//! the source. Days run from one cutoff to the next in the pipeline time zone, so a
+//! One tile file is kept per source day partition (`dt=E`) (many partitions are built by
+//! one query) and holds, for every (key, event day t, arrival day a), the partial
+//! aggregates of every feature that reads the source. Days run from one cutoff to the next in the pipeline time zone, so a
 //! snapshot D with a W-day window needs exactly the tile rows with `D-W <= t <= D-1`, and in
 //! as-known mode also `a <= D-1`: a late row lands in the tile of its (event day, arrival
 //! day) and never forces a rescan of history. Features whose partials do not add up (exact
@@ -12,7 +12,7 @@
 //! modification times are kept beside it) or when the definitions it serves change (they
 //! are part of the tile folder's name).
 
-use crate::build::{child, write_query, BuildError};
+use crate::build::{child, BuildError};
 use crate::sources::SourceReport;
 use crate::sql::{day_of_sql, ident, literal};
 use chrono::NaiveDate;
@@ -190,16 +190,19 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
     })
 }
 
-/// The de-duplicated rows of partition `day` of `source`, with `__key`, `__t`, `__a`.
-fn rows_sql(pipeline: &Pipeline, source: &Source, day: NaiveDate) -> String {
+/// The de-duplicated rows of partitions `days` of `source`, with `__part` (the partition,
+/// as text), `__key`, `__t`, `__a`. Duplicates are looked for within a partition, as the
+/// daily build of one partition would.
+fn rows_sql(pipeline: &Pipeline, source: &Source, days: &[NaiveDate]) -> String {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
+    let dp = ident(&source.spec.day_partition);
+    let list: Vec<String> = days.iter().map(|d| literal(&d.to_string())).collect();
     let base = format!(
-        "SELECT *, {} AS __key FROM {} WHERE {} = {}",
+        "SELECT *, {} AS __key, CAST({dp} AS VARCHAR) AS __part FROM {} WHERE {dp} IN ({})",
         ident(&source.key),
         ident(&source.name),
-        ident(&source.spec.day_partition),
-        literal(&day.to_string()),
+        list.join(", "),
     );
     let deduped = if source.spec.dedupe_on.is_empty() {
         base
@@ -207,7 +210,7 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, day: NaiveDate) -> String {
         let part: Vec<String> = source.spec.dedupe_on.iter().map(|c| ident(c)).collect();
         let order = arr.clone().unwrap_or_else(|| ev.clone());
         format!(
-            "SELECT * FROM (SELECT *, row_number() OVER (PARTITION BY {} ORDER BY {order}) AS __copy FROM ({base})) WHERE __copy = 1",
+            "SELECT * FROM (SELECT *, row_number() OVER (PARTITION BY __part, {} ORDER BY {order}) AS __copy FROM ({base})) WHERE __copy = 1",
             part.join(", ")
         )
     };
@@ -220,14 +223,19 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, day: NaiveDate) -> String {
     )
 }
 
-/// The SQL of the main tile of partition `day`.
+/// The SQL of the main tiles of partitions `days`, ordered by partition (`__part` first).
 pub fn tile_sql(
     pipeline: &Pipeline,
     source: &Source,
     layout: &TileLayout,
-    day: NaiveDate,
+    days: &[NaiveDate],
 ) -> String {
-    let mut cols = vec!["__key".to_string(), "__t".to_string(), "__a".to_string()];
+    let mut cols = vec![
+        "__part".to_string(),
+        "__key".to_string(),
+        "__t".to_string(),
+        "__a".to_string(),
+    ];
     // Rows with a null key stay in the tile (under a null key) only to be counted; rows
     // whose event time is after their arrival beyond the tolerance are counted too.
     cols.push("COUNT(*) AS __rows".to_string());
@@ -241,28 +249,113 @@ pub fn tile_sql(
     });
     cols.extend(layout.columns.iter().cloned());
     format!(
-        "SELECT {} FROM ({}) GROUP BY __key, __t, __a",
+        "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part",
         cols.join(", "),
-        rows_sql(pipeline, source, day)
+        rows_sql(pipeline, source, days)
     )
 }
 
-/// The SQL of a distinct-value tile of partition `day`.
+/// The SQL of a distinct-value tile of partitions `days`, ordered by partition.
 pub fn distinct_sql(
     pipeline: &Pipeline,
     source: &Source,
     expr: &str,
     filter: &Option<String>,
-    day: NaiveDate,
+    days: &[NaiveDate],
 ) -> String {
     let wh = filter
         .as_ref()
         .map(|f| format!(" AND ({f})"))
         .unwrap_or_default();
     format!(
-        "SELECT DISTINCT __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh}",
-        rows_sql(pipeline, source, day)
+        "SELECT DISTINCT __part, __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh} ORDER BY __part",
+        rows_sql(pipeline, source, days)
     )
+}
+
+/// Runs `sql` (whose first column is the partition `__part`, rows ordered by it) and
+/// writes the rows of each of `days` without that column to `dir/dt=D/part-0.parquet`,
+/// each through staging and rename. Days without rows get an empty file. On an error the
+/// file being written is dropped; files already published are whole (their fingerprints
+/// are not written yet, so they are rebuilt next time).
+async fn write_split(
+    ctx: &SessionContext,
+    sql: &str,
+    out: &Location,
+    dir: &StorePath,
+    days: &[NaiveDate],
+) -> Result<(), BuildError> {
+    use datafusion::arrow::array::AsArray;
+    use futures::StreamExt;
+    let first = days[0];
+    let engine = |source| BuildError::Engine { day: first, source };
+    let df = ctx.sql(sql).await.map_err(engine)?;
+    let mut stream = df.execute_stream().await.map_err(engine)?;
+    let full = stream.schema();
+    let keep: Vec<usize> = (1..full.fields().len()).collect();
+    let schema = Arc::new(full.project(&keep).map_err(|e| engine(e.into()))?);
+    let path = |d: NaiveDate| child(dir, &[&format!("dt={d}"), "part-0.parquet"]);
+    let mut pending: BTreeSet<NaiveDate> = days.iter().copied().collect();
+    let mut current: Option<crate::build::DayWriter> = None;
+    let streamed: Result<(), BuildError> = async {
+        while let Some(batch) = stream.next().await {
+            let batch = batch.map_err(engine)?;
+            let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Utf8)
+                .map_err(|e| engine(e.into()))?;
+            let parts = parts.as_string::<i32>();
+            let body = batch.project(&keep).map_err(|e| engine(e.into()))?;
+            let mut start = 0;
+            while start < batch.num_rows() {
+                let text = parts.value(start);
+                let mut end = start + 1;
+                while end < batch.num_rows() && parts.value(end) == text {
+                    end += 1;
+                }
+                let day: NaiveDate = text.parse().map_err(|_| {
+                    engine(datafusion::error::DataFusionError::Internal(format!(
+                        "tile partition {text:?} is not a date"
+                    )))
+                })?;
+                if current.as_ref().map(|w| w.day()) != Some(day) {
+                    if let Some(w) = current.take() {
+                        w.finish(None).await?;
+                    }
+                    if !pending.remove(&day) {
+                        return Err(engine(datafusion::error::DataFusionError::Internal(
+                            format!("tile rows of partition {day} arrived out of order"),
+                        )));
+                    }
+                    current = Some(crate::build::DayWriter::new(
+                        out,
+                        path(day),
+                        day,
+                        schema.clone(),
+                    )?);
+                }
+                if let Some(w) = current.as_mut() {
+                    w.write(&body.slice(start, end - start)).await?;
+                }
+                start = end;
+            }
+        }
+        Ok(())
+    }
+    .await;
+    if let Err(e) = streamed {
+        if let Some(w) = current.take() {
+            w.abandon().await;
+        }
+        return Err(e);
+    }
+    if let Some(w) = current.take() {
+        w.finish(None).await?;
+    }
+    for day in pending {
+        crate::build::DayWriter::new(out, path(day), day, schema.clone())?
+            .finish(None)
+            .await?;
+    }
+    Ok(())
 }
 
 /// What building tiles cost.
@@ -380,7 +473,15 @@ fn fingerprint(files: &[DataFile]) -> serde_json::Value {
         .collect::<Vec<_>>())
 }
 
-/// Builds the tiles of `source` for `days` that are missing or stale.
+/// Most raw partitions one tile query reads: one query per partition costs a fixed
+/// overhead (planning, a small file per output) that dominates long backfills, while
+/// very large batches hold more in memory and lose more work on a failure.
+const PARTITIONS_PER_QUERY: usize = 64;
+/// Most raw bytes one tile query reads (a batch ends at whichever bound comes first).
+const BYTES_PER_QUERY: u64 = 1 << 30;
+
+/// Builds the tiles of `source` for `days` that are missing or stale, many partitions per
+/// query.
 pub async fn ensure_tiles(
     ctx: &SessionContext,
     pipeline: &Pipeline,
@@ -391,6 +492,8 @@ pub async fn ensure_tiles(
 ) -> Result<TileStats, BuildError> {
     let source = &pipeline.sources[&layout.source];
     let mut stats = TileStats::default();
+    // (day, raw files, fingerprint) of every partition whose tile must be (re)built.
+    let mut stale: Vec<(NaiveDate, &[DataFile], serde_json::Value)> = Vec::new();
     for day in days {
         let Some(files) = report.listing.days.get(day) else {
             continue;
@@ -409,46 +512,62 @@ pub async fn ensure_tiles(
                 }
             }
         }
-        let path = child(&layout.dir(out), &[&format!("dt={day}"), "part-0.parquet"]);
-        write_query(
+        stale.push((*day, files, inputs));
+    }
+    let mut batches: Vec<&[(NaiveDate, &[DataFile], serde_json::Value)]> = Vec::new();
+    let mut rest = &stale[..];
+    while !rest.is_empty() {
+        let (mut n, mut bytes) = (0, 0u64);
+        while n < rest.len() && n < PARTITIONS_PER_QUERY {
+            let b: u64 = rest[n].1.iter().map(|f| f.size).sum();
+            if n > 0 && bytes + b > BYTES_PER_QUERY {
+                break;
+            }
+            bytes += b;
+            n += 1;
+        }
+        batches.push(&rest[..n]);
+        rest = &rest[n..];
+    }
+    for batch in batches {
+        let batch_days: Vec<NaiveDate> = batch.iter().map(|(d, _, _)| *d).collect();
+        write_split(
             ctx,
-            &tile_sql(pipeline, source, layout, *day),
+            &tile_sql(pipeline, source, layout, &batch_days),
             out,
-            &path,
-            *day,
-            None,
+            &layout.dir(out),
+            &batch_days,
         )
         .await?;
         for (i, expr, filter) in &layout.distinct {
-            let path = child(
-                &layout.distinct_dir(out, *i),
-                &[&format!("dt={day}"), "part-0.parquet"],
-            );
-            write_query(
+            write_split(
                 ctx,
-                &distinct_sql(pipeline, source, expr, filter, *day),
+                &distinct_sql(pipeline, source, expr, filter, &batch_days),
                 out,
-                &path,
-                *day,
-                None,
+                &layout.distinct_dir(out, *i),
+                &batch_days,
             )
             .await?;
         }
-        // The fingerprint is written last: a crash before it leaves the tile to be rebuilt.
-        out.store
-            .put(
-                &marker,
-                PutPayload::from(serde_json::to_vec(&inputs).unwrap_or_default()),
-            )
-            .await
-            .map_err(|e| BuildError::Write {
-                day: *day,
-                path: marker.to_string(),
-                reason: e.to_string(),
-            })?;
-        stats.partitions_built += 1;
-        stats.raw_files += files.len() as u64;
-        stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
+        for (day, files, inputs) in batch {
+            // The fingerprint is written last: a crash before it leaves the tile to be
+            // rebuilt.
+            let marker = child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"]);
+            out.store
+                .put(
+                    &marker,
+                    PutPayload::from(serde_json::to_vec(inputs).unwrap_or_default()),
+                )
+                .await
+                .map_err(|e| BuildError::Write {
+                    day: *day,
+                    path: marker.to_string(),
+                    reason: e.to_string(),
+                })?;
+            stats.partitions_built += 1;
+            stats.raw_files += files.len() as u64;
+            stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
+        }
     }
     Ok(stats)
 }

@@ -23,6 +23,11 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
+/// Most consecutive snapshot days one set-based query builds in a run: long enough that
+/// the per-query cost is shared, short enough that a stop or a lost lock is seen within
+/// minutes.
+const DAYS_PER_RANGE: usize = 31;
+
 /// What to run.
 #[derive(Debug, Clone)]
 pub struct RunOptions {
@@ -487,7 +492,27 @@ async fn build_days(
     let scope = plan::scope_of(opts.mode);
     // Population change and drift checks on every snapshot, as `daymark build` runs them.
     let checks = daymark_audit::quality::DailyChecks::new(pipeline, opts.mode);
-    for (i, day) in days.iter().enumerate() {
+    // Consecutive days are built together by one set-based query (as `daymark build`
+    // does for a range), in runs short enough that a stop or a lost lock is noticed soon.
+    let published = |entry: &mut Entry, report: &DayReport| {
+        entry.finished = chrono::Utc::now().to_rfc3339();
+        entry.rows = report.rows;
+        entry.bytes = report.bytes;
+        entry.seconds = report.seconds;
+        entry.messages = report.warnings.clone();
+        entry.output = Some(format!(
+            "{}/dt={}/part-0.parquet",
+            snapshots_dir(opts.mode),
+            report.day
+        ));
+    };
+    let new_entry = |day: NaiveDate| {
+        let mut entry = Entry::new(Kind::Snapshot, day, scope, pipeline, me);
+        entry.inputs = plan::inputs_of(pipeline, &listings, day, opts.mode);
+        entry
+    };
+    let mut next = 0;
+    while next < days.len() {
         if stop.load(Ordering::SeqCst) {
             on(Event::Stopping);
             summary.outcome = RunOutcome::Stopped;
@@ -496,42 +521,75 @@ async fn build_days(
         if guard.lost() {
             return Err(RunnerError::LockLost(guard.info().describe()));
         }
-        let query =
-            daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, *day, opts.mode);
-        let mut entry = Entry::new(Kind::Snapshot, *day, scope, pipeline, me);
-        entry.inputs = plan::inputs_of(pipeline, &listings, *day, opts.mode);
-        let result = daymark_engine::build::build_day_checked(
-            &ctx,
-            pipeline,
-            out,
-            *day,
-            opts.mode,
-            &query.sql,
-            Some(&layouts),
-            Some(&checks),
-        )
-        .await;
-        entry.finished = chrono::Utc::now().to_rfc3339();
-        match result {
-            Ok(report) => {
-                entry.rows = report.rows;
-                entry.bytes = report.bytes;
-                entry.seconds = report.seconds;
-                entry.messages = report.warnings.clone();
-                entry.output = Some(format!(
-                    "{}/dt={day}/part-0.parquet",
-                    snapshots_dir(opts.mode)
-                ));
-                ledger::write(out, &entry).await?;
-                summary.published.push((*day, report.rows));
+        let mut end = next + 1;
+        while end < days.len()
+            && end - next < DAYS_PER_RANGE
+            && days[end].pred_opt() == Some(days[end - 1])
+        {
+            end += 1;
+        }
+        let run = &days[next..end];
+        let mut reports: Vec<DayReport> = Vec::new();
+        let result = if run.len() == 1 {
+            let query =
+                daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, run[0], opts.mode);
+            daymark_engine::build::build_day_checked(
+                &ctx,
+                pipeline,
+                out,
+                run[0],
+                opts.mode,
+                &query.sql,
+                Some(&layouts),
+                Some(&checks),
+            )
+            .await
+            .map(|r| reports.push(r))
+        } else {
+            let mut index = next;
+            daymark_engine::backfill::build_range(
+                &ctx,
+                pipeline,
+                &layouts,
+                out,
+                run,
+                opts.mode,
+                Some(&checks),
+                |r| {
+                    index += 1;
+                    on(Event::Snapshot {
+                        index,
+                        total: days.len(),
+                        report: r,
+                        why: whys.get(&r.day).copied().unwrap_or(""),
+                    });
+                    reports.push(r.clone());
+                },
+            )
+            .await
+            .map(|_| ())
+        };
+        // Ledger entries of the days published, in order.
+        for report in &reports {
+            let mut entry = new_entry(report.day);
+            published(&mut entry, report);
+            ledger::write(out, &entry).await?;
+            summary.published.push((report.day, report.rows));
+            if run.len() == 1 {
                 on(Event::Snapshot {
-                    index: i + 1,
+                    index: next + 1,
                     total: days.len(),
-                    report: &report,
-                    why: whys.get(day).copied().unwrap_or(""),
+                    report,
+                    why: whys.get(&report.day).copied().unwrap_or(""),
                 });
             }
+        }
+        next += reports.len();
+        match result {
+            Ok(()) => {}
             Err(BuildError::ChecksFailed { day, failures }) => {
+                let mut entry = new_entry(day);
+                entry.finished = chrono::Utc::now().to_rfc3339();
                 entry.outcome = Outcome::ChecksFailed;
                 entry.messages = failures.clone();
                 ledger::write(out, &entry).await?;
@@ -540,8 +598,12 @@ async fn build_days(
                     day,
                     failures: &failures,
                 });
+                // The days after it are built by the next run of consecutive days.
+                next = days.iter().position(|d| *d == day).map_or(end, |p| p + 1);
             }
             Err(e) => {
+                let mut entry = new_entry(days[next.min(days.len() - 1)]);
+                entry.finished = chrono::Utc::now().to_rfc3339();
                 entry.outcome = Outcome::Failed;
                 entry.messages = vec![e.to_string()];
                 let _ = ledger::write(out, &entry).await;
