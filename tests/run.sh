@@ -14,6 +14,9 @@ python3 -m pip install --quiet --disable-pip-version-check --root-user-action=ig
 
 cargo test --workspace
 
-cargo build -p daymark-cli
+# `cargo test` built the CLI for its integration tests; the reference checks use that
+# binary (a separate `cargo build -p daymark-cli` would resolve other features and rebuild
+# much of DataFusion).
 export DAYMARK_BIN="${CARGO_TARGET_DIR:-$PWD/target}/debug/daymark"
+test -x "$DAYMARK_BIN"
 python3 -m pytest -q tests/reference

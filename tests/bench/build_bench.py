@@ -141,6 +141,8 @@ def main():
     ap.add_argument("--binary", default=str(REPO / "target" / "release" / "daymark"))
     ap.add_argument("--long", type=int, default=91, help="longest window in days")
     ap.add_argument("--backfill", type=int, default=365, help="days of snapshots to build")
+    ap.add_argument("--memory-limit", default=None,
+                    help="passed to daymark build (e.g. 256MiB); peak memory is then compared to it")
     args = ap.parse_args()
     work = pathlib.Path(args.work)
     shutil.rmtree(work, ignore_errors=True)
@@ -158,6 +160,8 @@ def main():
     pipeline = work / "bench.yaml"
     pipeline.write_text(PIPELINE.format(out=work / "out", world=world, long=args.long))
     build = [args.binary, "build", pipeline, "--knowledge", "event-time", "--log-format", "json"]
+    if args.memory_limit:
+        build += ["--memory-limit", args.memory_limit]
     b_secs, b_rss, _ = timed(build + ["--from", first, "--to", last])
     d_secs, d_rss, _ = timed(build + ["--date", last + dt.timedelta(days=1)])
     # The same daily build with a 365-day longest window (the tiles are shared).
@@ -173,7 +177,8 @@ def main():
     f_secs = io_floor(world, work / "floor-out", out_rows, 9)
 
     n = args.backfill
-    print(f"{n}-day backfill, daymark tiled: {b_secs:8.1f} s  {events / b_secs:12.0f} events/s  peak {b_rss:6.0f} MiB")
+    limit = f"  (--memory-limit {args.memory_limit})" if args.memory_limit else ""
+    print(f"{n}-day backfill, daymark tiled: {b_secs:8.1f} s  {events / b_secs:12.0f} events/s  peak {b_rss:6.0f} MiB{limit}")
     print(f"{n}-day backfill, DuckDB SQL:    {k_secs:8.1f} s  {events / k_secs:12.0f} events/s  peak {k_rss:6.0f} MiB")
     print(f"I/O floor (DataFusion scan + write {out_rows} rows): {f_secs:8.1f} s")
     print(f"daily build (next day), daymark: {d_secs:8.1f} s  peak {d_rss:6.0f} MiB  (longest window {args.long} d)")

@@ -217,7 +217,17 @@ fn judge(
     (fail, warn)
 }
 
-/// Writer settings for published Parquet.
+/// Parquet settings of tile files: LZ4 (raw), which is several times cheaper to set up
+/// and decode than zstd for the many small column chunks tiles have; tiles are an
+/// intermediate layer, read back by daymark only.
+pub fn tile_writer_properties() -> WriterProperties {
+    WriterProperties::builder()
+        .set_compression(Compression::LZ4_RAW)
+        .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
+        .build()
+}
+
+/// Writer settings for published Parquet (zstd).
 pub fn writer_properties() -> WriterProperties {
     WriterProperties::builder()
         .set_compression(Compression::ZSTD(
@@ -242,29 +252,60 @@ pub struct DayWriter {
 }
 
 impl DayWriter {
-    /// Opens a staging file that will become `final_path`.
+    /// Opens a staging file that will become `final_path`, written with
+    /// [`writer_properties`].
     pub fn new(
         out: &Location,
         final_path: StorePath,
         day: NaiveDate,
         schema: arrow::datatypes::SchemaRef,
     ) -> Result<Self, BuildError> {
-        let staging = child(
-            &out.prefix,
-            &[
-                "_staging",
-                &format!(
-                    "{}.{}.{}",
-                    final_path.as_ref().replace('/', "_"),
-                    std::process::id(),
-                    nanos_now()
-                ),
-            ],
-        );
+        Self::with_properties(out, final_path, day, schema, writer_properties(), false)
+    }
+
+    /// A file written straight to `final_path` with `properties`, for files that are
+    /// not checked before they become visible (tiles): an object store's put is atomic
+    /// (a local folder's too: object_store writes a temporary file and renames it), so
+    /// readers see the old object or the whole new one, without a staging copy of ours.
+    pub fn direct(
+        out: &Location,
+        final_path: StorePath,
+        day: NaiveDate,
+        schema: arrow::datatypes::SchemaRef,
+        properties: WriterProperties,
+    ) -> Result<Self, BuildError> {
+        Self::with_properties(out, final_path, day, schema, properties, true)
+    }
+
+    /// [`DayWriter::new`] with other Parquet settings; `direct`: see [`DayWriter::direct`].
+    fn with_properties(
+        out: &Location,
+        final_path: StorePath,
+        day: NaiveDate,
+        schema: arrow::datatypes::SchemaRef,
+        properties: WriterProperties,
+        direct: bool,
+    ) -> Result<Self, BuildError> {
+        let staging = if direct {
+            final_path.clone()
+        } else {
+            child(
+                &out.prefix,
+                &[
+                    "_staging",
+                    &format!(
+                        "{}.{}.{}",
+                        final_path.as_ref().replace('/', "_"),
+                        std::process::id(),
+                        nanos_now()
+                    ),
+                ],
+            )
+        };
         let writer = AsyncArrowWriter::try_new(
             BufWriter::new(out.store.clone(), staging.clone()),
             schema,
-            Some(writer_properties()),
+            Some(properties),
         )
         .map_err(|e| BuildError::Write {
             day,
@@ -378,10 +419,12 @@ impl DayWriter {
             }
             None => Vec::new(),
         };
-        out.store
-            .rename(&staging, &final_path)
-            .await
-            .map_err(|e| write_err(&final_path, e.to_string()))?;
+        if staging != final_path {
+            out.store
+                .rename(&staging, &final_path)
+                .await
+                .map_err(|e| write_err(&final_path, e.to_string()))?;
+        }
         let bytes = out
             .store
             .head(&final_path)
@@ -391,9 +434,11 @@ impl DayWriter {
         Ok((rows, bytes, warnings))
     }
 
-    /// Abandons the file: deletes the staging object.
+    /// Abandons the file: deletes the staging object (a direct file was never put).
     pub async fn abandon(self) {
-        let _ = self.out.store.delete(&self.staging).await;
+        if self.staging != self.final_path {
+            let _ = self.out.store.delete(&self.staging).await;
+        }
     }
 }
 
