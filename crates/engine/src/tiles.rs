@@ -489,6 +489,17 @@ const PARTITIONS_PER_QUERY: usize = 366;
 /// that a failure loses little work and large partitions still come in several queries.
 const BYTES_PER_QUERY: u64 = 256 << 20;
 
+/// Raw bytes per tile query under the session's memory limit: an eighth of it (compressed
+/// Parquet grows several times when decoded, and the batch's sort keeps merge buffers
+/// that cannot spill), at most [`BYTES_PER_QUERY`].
+fn bytes_per_query(ctx: &SessionContext) -> u64 {
+    use datafusion::execution::memory_pool::MemoryLimit;
+    match ctx.runtime_env().memory_pool.memory_limit() {
+        MemoryLimit::Finite(limit) => (limit as u64 / 8).min(BYTES_PER_QUERY),
+        _ => BYTES_PER_QUERY,
+    }
+}
+
 /// Builds the tiles of `source` for `days` that are missing or stale, many partitions per
 /// query.
 pub async fn ensure_tiles(
@@ -524,12 +535,13 @@ pub async fn ensure_tiles(
         stale.push((*day, files, inputs));
     }
     let mut batches: Vec<&[(NaiveDate, &[DataFile], serde_json::Value)]> = Vec::new();
+    let budget = bytes_per_query(ctx);
     let mut rest = &stale[..];
     while !rest.is_empty() {
         let (mut n, mut bytes) = (0, 0u64);
         while n < rest.len() && n < PARTITIONS_PER_QUERY {
             let b: u64 = rest[n].1.iter().map(|f| f.size).sum();
-            if n > 0 && bytes + b > BYTES_PER_QUERY {
+            if n > 0 && bytes + b > budget {
                 break;
             }
             bytes += b;
