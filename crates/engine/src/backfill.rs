@@ -637,13 +637,10 @@ pub async fn build_range(
                 )));
             };
             let dates = dates.clone();
-            let mut start = 0;
-            while start < batch.num_rows() {
-                let d = epoch + chrono::Duration::days(dates.value(start) as i64);
-                let mut end = start + 1;
-                while end < batch.num_rows() && dates.value(end) == dates.value(start) {
-                    end += 1;
-                }
+            for run in
+                crate::build::equal_runs(batch.num_rows(), |a, b| dates.value(a) == dates.value(b))
+            {
+                let d = epoch + chrono::Duration::days(dates.value(run.start) as i64);
                 if current.as_ref().map(|(w, _)| w.day()) != Some(d) {
                     if let Some(w) = current.take() {
                         publisher.close(w).await?;
@@ -655,12 +652,11 @@ pub async fn build_range(
                     pending.next();
                     current = Some(publisher.open(d)?);
                 }
-                let slice: RecordBatch = batch.slice(start, end - start);
+                let slice: RecordBatch = batch.slice(run.start, run.len());
                 if let Some((w, _)) = current.as_mut() {
                     w.tally(pipeline, &slice);
                     w.write(&slice).await?;
                 }
-                start = end;
             }
         }
         Ok(())

@@ -217,6 +217,25 @@ fn judge(
     (fail, warn)
 }
 
+/// The runs of rows `0..len` of a sorted column: maximal ranges whose rows all satisfy
+/// `same(first row of the range, row)`. Splits a batch sorted by day into one slice per day.
+pub(crate) fn equal_runs(
+    len: usize,
+    same: impl Fn(usize, usize) -> bool,
+) -> Vec<std::ops::Range<usize>> {
+    let mut runs = Vec::new();
+    let mut start = 0;
+    while start < len {
+        let mut end = start + 1;
+        while end < len && same(start, end) {
+            end += 1;
+        }
+        runs.push(start..end);
+        start = end;
+    }
+    runs
+}
+
 /// Parquet settings of tile files: LZ4 (raw), which is several times cheaper to set up
 /// and decode than zstd for the many small column chunks tiles have; tiles are an
 /// intermediate layer, read back by daymark only.

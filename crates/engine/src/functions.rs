@@ -77,11 +77,7 @@ fn sum_type(input: &DataType) -> Result<DataType> {
 
 impl WindowUDFImpl for Running {
     fn name(&self) -> &str {
-        match self.kind {
-            RunningKind::Sum => RUNNING_SUM,
-            RunningKind::Min => RUNNING_MIN,
-            RunningKind::Max => RUNNING_MAX,
-        }
+        name_of(self.kind)
     }
 
     fn signature(&self) -> &Signature {
@@ -125,6 +121,30 @@ impl WindowUDFImpl for Running {
     }
 }
 
+/// The name a function of `kind` is registered under.
+fn name_of(kind: RunningKind) -> &'static str {
+    match kind {
+        RunningKind::Sum => RUNNING_SUM,
+        RunningKind::Min => RUNNING_MIN,
+        RunningKind::Max => RUNNING_MAX,
+    }
+}
+
+/// Folds `x` into the running value `s` of an integer type (`None` on overflow).
+fn fold<T: Ord + Copy>(
+    kind: RunningKind,
+    s: Option<T>,
+    x: T,
+    add: fn(T, T) -> Option<T>,
+) -> Option<T> {
+    match (s, kind) {
+        (None, _) => Some(x),
+        (Some(s), RunningKind::Sum) => add(s, x),
+        (Some(s), RunningKind::Min) => Some(s.min(x)),
+        (Some(s), RunningKind::Max) => Some(s.max(x)),
+    }
+}
+
 /// The running value of one partition.
 #[derive(Debug)]
 enum State {
@@ -152,112 +172,79 @@ impl RunningEvaluator {
             return Ok(());
         }
         let kind = self.kind;
-        let pick_i = |a: i64, b: i64| match kind {
-            RunningKind::Sum => a.checked_add(b),
-            RunningKind::Min => Some(a.min(b)),
-            RunningKind::Max => Some(a.max(b)),
-        };
+        let mixed = || exec_err!("{}: mixed input types", name_of(kind));
         let overflow = || exec_err!("{RUNNING_SUM}: the running total overflows");
-        match values.data_type() {
-            DataType::Int64 => {
+        self.state = match (values.data_type(), &self.state) {
+            (DataType::Int64, State::None | State::I64(_)) => {
                 let x = values.as_primitive::<Int64Type>().value(i);
-                self.state = match self.state {
-                    State::None => State::I64(x),
-                    State::I64(s) => match pick_i(s, x) {
-                        Some(v) => State::I64(v),
-                        None => return overflow(),
-                    },
-                    _ => return exec_err!("{}: mixed input types", self.kind_name()),
+                let s = if let State::I64(s) = self.state {
+                    Some(s)
+                } else {
+                    None
                 };
-            }
-            DataType::UInt64 => {
-                let x = values.as_primitive::<UInt64Type>().value(i);
-                self.state = match self.state {
-                    State::None => State::U64(x),
-                    State::U64(s) => State::U64(match kind {
-                        RunningKind::Sum => match s.checked_add(x) {
-                            Some(v) => v,
-                            None => return overflow(),
-                        },
-                        RunningKind::Min => s.min(x),
-                        RunningKind::Max => s.max(x),
-                    }),
-                    _ => return exec_err!("{}: mixed input types", self.kind_name()),
-                };
-            }
-            DataType::Float64 => {
-                let x = values.as_primitive::<Float64Type>().value(i);
-                self.state = match self.state {
-                    State::None => State::F64(x),
-                    State::F64(s) => State::F64(match kind {
-                        RunningKind::Sum => s + x,
-                        // NaN handling as in MIN/MAX: NaN is larger than any number.
-                        RunningKind::Min => {
-                            if x.total_cmp(&s).is_lt() {
-                                x
-                            } else {
-                                s
-                            }
-                        }
-                        RunningKind::Max => {
-                            if x.total_cmp(&s).is_gt() {
-                                x
-                            } else {
-                                s
-                            }
-                        }
-                    }),
-                    _ => return exec_err!("{}: mixed input types", self.kind_name()),
-                };
-            }
-            DataType::Decimal128(_, _) => {
-                let x = values.as_primitive::<Decimal128Type>().value(i);
-                self.state = match self.state {
-                    State::None => State::Dec(x),
-                    State::Dec(s) => State::Dec(match kind {
-                        RunningKind::Sum => match s.checked_add(x) {
-                            Some(v) => v,
-                            None => return overflow(),
-                        },
-                        RunningKind::Min => s.min(x),
-                        RunningKind::Max => s.max(x),
-                    }),
-                    _ => return exec_err!("{}: mixed input types", self.kind_name()),
-                };
-            }
-            _ if kind == RunningKind::Sum => {
-                // Narrow integers and floats: widen to the output type first.
-                let x = ScalarValue::try_from_array(values, i)?.cast_to(&self.out)?;
-                let arr = x.to_array()?;
-                return self.step(&arr, 0);
-            }
-            _ => {
-                let x = ScalarValue::try_from_array(values, i)?;
-                let keep = match &self.state {
-                    State::None => false,
-                    State::Other(s) => match s.partial_cmp(&x) {
-                        Some(o) => match kind {
-                            RunningKind::Min => o.is_le(),
-                            _ => o.is_ge(),
-                        },
-                        None => true,
-                    },
-                    _ => return exec_err!("{}: mixed input types", self.kind_name()),
-                };
-                if !keep {
-                    self.state = State::Other(x);
+                match fold(kind, s, x, i64::checked_add) {
+                    Some(v) => State::I64(v),
+                    None => return overflow(),
                 }
             }
-        }
+            (DataType::UInt64, State::None | State::U64(_)) => {
+                let x = values.as_primitive::<UInt64Type>().value(i);
+                let s = if let State::U64(s) = self.state {
+                    Some(s)
+                } else {
+                    None
+                };
+                match fold(kind, s, x, u64::checked_add) {
+                    Some(v) => State::U64(v),
+                    None => return overflow(),
+                }
+            }
+            (DataType::Decimal128(_, _), State::None | State::Dec(_)) => {
+                let x = values.as_primitive::<Decimal128Type>().value(i);
+                let s = if let State::Dec(s) = self.state {
+                    Some(s)
+                } else {
+                    None
+                };
+                match fold(kind, s, x, i128::checked_add) {
+                    Some(v) => State::Dec(v),
+                    None => return overflow(),
+                }
+            }
+            (DataType::Float64, State::None | State::F64(_)) => {
+                let x = values.as_primitive::<Float64Type>().value(i);
+                State::F64(match (&self.state, kind) {
+                    (State::F64(s), RunningKind::Sum) => s + x,
+                    // As in MIN/MAX, floats compare by total order (NaN is the largest).
+                    (State::F64(s), RunningKind::Min) if s.total_cmp(&x).is_le() => *s,
+                    (State::F64(s), RunningKind::Max) if s.total_cmp(&x).is_ge() => *s,
+                    _ => x,
+                })
+            }
+            (
+                DataType::Int64 | DataType::UInt64 | DataType::Decimal128(_, _) | DataType::Float64,
+                _,
+            ) => return mixed(),
+            (_, _) if kind == RunningKind::Sum => {
+                // Narrow integers and floats: widen to the output type first.
+                let x = ScalarValue::try_from_array(values, i)?.cast_to(&self.out)?;
+                return self.step(&x.to_array()?, 0);
+            }
+            (_, State::None) => State::Other(ScalarValue::try_from_array(values, i)?),
+            (_, State::Other(s)) => {
+                let x = ScalarValue::try_from_array(values, i)?;
+                let keep = s.partial_cmp(&x).is_none_or(|o| match kind {
+                    RunningKind::Min => o.is_le(),
+                    _ => o.is_ge(),
+                });
+                if keep {
+                    return Ok(());
+                }
+                State::Other(x)
+            }
+            (_, _) => return mixed(),
+        };
         Ok(())
-    }
-
-    fn kind_name(&self) -> &'static str {
-        match self.kind {
-            RunningKind::Sum => RUNNING_SUM,
-            RunningKind::Min => RUNNING_MIN,
-            RunningKind::Max => RUNNING_MAX,
-        }
     }
 
     /// The current running value as a scalar of the output type.

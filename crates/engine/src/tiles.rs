@@ -304,13 +304,10 @@ async fn write_split(
                 .map_err(|e| engine(e.into()))?;
             let parts = parts.as_string::<i32>();
             let body = batch.project(&keep).map_err(|e| engine(e.into()))?;
-            let mut start = 0;
-            while start < batch.num_rows() {
-                let text = parts.value(start);
-                let mut end = start + 1;
-                while end < batch.num_rows() && parts.value(end) == text {
-                    end += 1;
-                }
+            for run in
+                crate::build::equal_runs(batch.num_rows(), |a, b| parts.value(a) == parts.value(b))
+            {
+                let text = parts.value(run.start);
                 let day: NaiveDate = text.parse().map_err(|_| {
                     engine(datafusion::error::DataFusionError::Internal(format!(
                         "tile partition {text:?} is not a date"
@@ -334,9 +331,8 @@ async fn write_split(
                     )?);
                 }
                 if let Some(w) = current.as_mut() {
-                    w.write(&body.slice(start, end - start)).await?;
+                    w.write(&body.slice(run.start, run.len())).await?;
                 }
-                start = end;
             }
         }
         Ok(())
@@ -480,6 +476,11 @@ fn fingerprint(files: &[DataFile]) -> serde_json::Value {
         .collect::<Vec<_>>())
 }
 
+/// Where the fingerprint of partition `day`'s tile is kept.
+fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
+    child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"])
+}
+
 /// Most raw partitions one tile query reads: every query lists and prunes all of the
 /// source's partitions and plans again, a fixed cost that dominated long backfills when
 /// it was paid per partition (measured: 1,316 small partitions took 11 s one per query,
@@ -519,7 +520,7 @@ pub async fn ensure_tiles(
             continue;
         };
         let inputs = fingerprint(files);
-        let marker = child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"]);
+        let marker = marker_path(layout, out, *day);
         if let Ok(stored) = out.store.get(&marker).await {
             if let Ok(bytes) = stored.bytes().await {
                 if serde_json::from_slice::<serde_json::Value>(&bytes)
@@ -573,7 +574,7 @@ pub async fn ensure_tiles(
         for (day, files, inputs) in batch {
             // The fingerprint is written last: a crash before it leaves the tile to be
             // rebuilt.
-            let marker = child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"]);
+            let marker = marker_path(layout, out, *day);
             out.store
                 .put(
                     &marker,

@@ -494,21 +494,10 @@ async fn build_days(
     let checks = daymark_audit::quality::DailyChecks::new(pipeline, opts.mode);
     // Consecutive days are built together by one set-based query (as `daymark build`
     // does for a range), in runs short enough that a stop or a lost lock is noticed soon.
-    let published = |entry: &mut Entry, report: &DayReport| {
-        entry.finished = chrono::Utc::now().to_rfc3339();
-        entry.rows = report.rows;
-        entry.bytes = report.bytes;
-        entry.seconds = report.seconds;
-        entry.messages = report.warnings.clone();
-        entry.output = Some(format!(
-            "{}/dt={}/part-0.parquet",
-            snapshots_dir(opts.mode),
-            report.day
-        ));
-    };
     let new_entry = |day: NaiveDate| {
         let mut entry = Entry::new(Kind::Snapshot, day, scope, pipeline, me);
         entry.inputs = plan::inputs_of(pipeline, &listings, day, opts.mode);
+        entry.finished = chrono::Utc::now().to_rfc3339();
         entry
     };
     let mut next = 0;
@@ -530,6 +519,15 @@ async fn build_days(
         }
         let run = &days[next..end];
         let mut reports: Vec<DayReport> = Vec::new();
+        let mut on_day = |r: &DayReport| {
+            on(Event::Snapshot {
+                index: next + reports.len() + 1,
+                total: days.len(),
+                report: r,
+                why: whys.get(&r.day).copied().unwrap_or(""),
+            });
+            reports.push(r.clone());
+        };
         let result = if run.len() == 1 {
             let query =
                 daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, run[0], opts.mode);
@@ -544,9 +542,8 @@ async fn build_days(
                 Some(&checks),
             )
             .await
-            .map(|r| reports.push(r))
+            .map(|r| on_day(&r))
         } else {
-            let mut index = next;
             daymark_engine::backfill::build_range(
                 &ctx,
                 pipeline,
@@ -555,16 +552,7 @@ async fn build_days(
                 run,
                 opts.mode,
                 Some(&checks),
-                |r| {
-                    index += 1;
-                    on(Event::Snapshot {
-                        index,
-                        total: days.len(),
-                        report: r,
-                        why: whys.get(&r.day).copied().unwrap_or(""),
-                    });
-                    reports.push(r.clone());
-                },
+                &mut on_day,
             )
             .await
             .map(|_| ())
@@ -572,24 +560,23 @@ async fn build_days(
         // Ledger entries of the days published, in order.
         for report in &reports {
             let mut entry = new_entry(report.day);
-            published(&mut entry, report);
+            entry.rows = report.rows;
+            entry.bytes = report.bytes;
+            entry.seconds = report.seconds;
+            entry.messages = report.warnings.clone();
+            entry.output = Some(format!(
+                "{}/dt={}/part-0.parquet",
+                snapshots_dir(opts.mode),
+                report.day
+            ));
             ledger::write(out, &entry).await?;
             summary.published.push((report.day, report.rows));
-            if run.len() == 1 {
-                on(Event::Snapshot {
-                    index: next + 1,
-                    total: days.len(),
-                    report,
-                    why: whys.get(&report.day).copied().unwrap_or(""),
-                });
-            }
         }
         next += reports.len();
         match result {
             Ok(()) => {}
             Err(BuildError::ChecksFailed { day, failures }) => {
                 let mut entry = new_entry(day);
-                entry.finished = chrono::Utc::now().to_rfc3339();
                 entry.outcome = Outcome::ChecksFailed;
                 entry.messages = failures.clone();
                 ledger::write(out, &entry).await?;
@@ -602,8 +589,8 @@ async fn build_days(
                 next = days.iter().position(|d| *d == day).map_or(end, |p| p + 1);
             }
             Err(e) => {
-                let mut entry = new_entry(days[next.min(days.len() - 1)]);
-                entry.finished = chrono::Utc::now().to_rfc3339();
+                // `next` is the first day of the run that was not published.
+                let mut entry = new_entry(days[next]);
                 entry.outcome = Outcome::Failed;
                 entry.messages = vec![e.to_string()];
                 let _ = ledger::write(out, &entry).await;
