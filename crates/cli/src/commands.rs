@@ -176,6 +176,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit,
         target_partitions: None,
+        ..Default::default()
     })?;
     register_sources(&ctx, &pipeline, &reports).await?;
     daymark_engine::build::write_dictionary(&pipeline, &types, &out, mode).await?;
@@ -184,6 +185,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     let tiled = args.engine == "tiled";
     let layouts = daymark_engine::tiles::layouts(&pipeline);
     if tiled {
+        let t_tiles = std::time::Instant::now();
         let per_source =
             daymark_engine::tiles::prepare(&ctx, &pipeline, &reports, &layouts, &out, &days, mode)
                 .await
@@ -211,13 +213,14 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             "read",
             || {
                 format!(
-                    "read {} raw file(s), {} in all; {} tile partition(s) reused",
+                    "read {} raw file(s), {} in all; {} tile partition(s) reused ({:.1} s)",
                     total.raw_files,
                     human_bytes(total.raw_bytes),
-                    total.partitions_reused
+                    total.partitions_reused,
+                    t_tiles.elapsed().as_secs_f64()
                 )
             },
-            json!({"raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.null_key_rows, "event_after_arrival_rows": total.event_after_arrival_rows}),
+            json!({"seconds": t_tiles.elapsed().as_secs_f64(), "raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.null_key_rows, "event_after_arrival_rows": total.event_after_arrival_rows}),
         );
     }
     let mut rows = 0u64;
@@ -311,7 +314,7 @@ fn log_snapshot(
             }
             line
         },
-        json!({"day": r.day.to_string(), "rows": r.rows, "bytes": r.bytes, "seconds": r.seconds, "warnings": r.warnings}),
+        json!({"day": r.day.to_string(), "rows": r.rows, "bytes": r.bytes, "seconds": r.seconds, "warnings": r.warnings, "queries": r.queries}),
     );
 }
 

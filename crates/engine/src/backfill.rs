@@ -64,6 +64,7 @@ fn visible_tile_rows(
     last: NaiveDate,
     knowledge: Knowledge,
     until: i64,
+    keys: &KeyRange,
 ) -> String {
     let mut conds = vec![
         "__key IS NOT NULL".to_string(),
@@ -73,11 +74,162 @@ fn visible_tile_rows(
     if let Some(f) = first {
         conds.push(format!("dt >= {}", literal(&f.to_string())));
     }
+    conds.extend(keys.conditions());
     format!(
         "SELECT * FROM (SELECT {columns}, CAST(__t AS BIGINT) AS __tn, {} AS __vn FROM {table} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {until}",
         first_visible_day_sql(knowledge),
         conds.join(" AND ")
     )
+}
+
+/// A range of keys `[from, to)`, the ends as SQL literals (`None`: open). A backfill whose
+/// working set would not fit in memory runs one query per range: every aggregate and the
+/// population are per key, so ranges of keys are independent.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct KeyRange {
+    /// The smallest key of the range (inclusive).
+    pub from: Option<String>,
+    /// The key after the range (exclusive).
+    pub to: Option<String>,
+}
+
+impl KeyRange {
+    /// Every key.
+    pub fn all() -> Self {
+        Self::default()
+    }
+
+    /// SQL conditions on `__key` selecting the range.
+    fn conditions(&self) -> Vec<String> {
+        let mut c = Vec::new();
+        if let Some(f) = &self.from {
+            c.push(format!("__key >= {f}"));
+        }
+        if let Some(t) = &self.to {
+            c.push(format!("__key < {t}"));
+        }
+        c
+    }
+}
+
+/// A key as an SQL literal, for the key types a range can be cut on (integers, text).
+fn key_literal(keys: &dyn datafusion::arrow::array::Array, i: usize) -> Option<String> {
+    use datafusion::scalar::ScalarValue as S;
+    match S::try_from_array(keys, i).ok()? {
+        S::Utf8(Some(s)) | S::LargeUtf8(Some(s)) | S::Utf8View(Some(s)) => Some(literal(&s)),
+        v @ (S::Int8(Some(_))
+        | S::Int16(Some(_))
+        | S::Int32(Some(_))
+        | S::Int64(Some(_))
+        | S::UInt8(Some(_))
+        | S::UInt16(Some(_))
+        | S::UInt32(Some(_))
+        | S::UInt64(Some(_))) => Some(v.to_string()),
+        _ => None,
+    }
+}
+
+/// Rows of working set (tile rows plus key-days of the spine) one backfill query holds
+/// when no memory limit is set. Measured on the benchmark world (docs/benchmarks.md).
+const WORK_ROWS_PER_QUERY: u64 = 16_000_000;
+/// Bytes of memory per working-set row of the backfill query (its union rows, the hash
+/// aggregation, the window sort and the final sort), measured as peak resident memory
+/// over working-set rows on the benchmark world (docs/benchmarks.md).
+const BYTES_PER_WORK_ROW: u64 = 280;
+
+/// Working-set rows per backfill query: as the session was told, else what its memory
+/// limit holds, at most [`WORK_ROWS_PER_QUERY`].
+fn work_rows_per_query(ctx: &SessionContext) -> u64 {
+    use datafusion::execution::memory_pool::MemoryLimit;
+    let config = ctx.state().config().clone();
+    if let Some(n) = config.get_extension::<crate::session::BackfillRowsPerQuery>() {
+        return n.0;
+    }
+    match ctx.runtime_env().memory_pool.memory_limit() {
+        MemoryLimit::Finite(limit) => (limit as u64 / BYTES_PER_WORK_ROW).clamp(1, WORK_ROWS_PER_QUERY),
+        _ => WORK_ROWS_PER_QUERY,
+    }
+}
+
+/// Cuts the keys of the backfill `first..=last` into ranges of about `rows` working-set
+/// rows each: per key, its tile rows in the partitions the range reads plus one row per
+/// snapshot day (the most its spine can have). One range when all fits, or when keys are
+/// of a type a range cannot be cut on.
+pub async fn key_ranges(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+    rows: u64,
+) -> datafusion::error::Result<Vec<KeyRange>> {
+    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
+    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
+    let mut counts = Vec::new();
+    for (name, l) in layouts {
+        let Some(read) = reads_last.get(name) else {
+            continue;
+        };
+        let mut conds = vec![
+            "__key IS NOT NULL".to_string(),
+            format!("dt <= {}", literal(&read.last_day.to_string())),
+        ];
+        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
+            conds.push(format!("dt >= {}", literal(&f.to_string())));
+        }
+        let tables = std::iter::once(l.table())
+            .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
+        for t in tables {
+            if ctx.table_exist(t.as_str())? {
+                counts.push(format!(
+                    "SELECT __key, COUNT(*) AS __n FROM {} WHERE {} GROUP BY __key",
+                    ident(&t),
+                    conds.join(" AND ")
+                ));
+            }
+        }
+    }
+    if counts.is_empty() {
+        return Ok(vec![KeyRange::all()]);
+    }
+    let days = num(last) - num(first) + 1;
+    let sql = format!(
+        "SELECT __key, CAST(SUM(__n) AS BIGINT) + {days} AS __n FROM ({}) GROUP BY __key ORDER BY __key",
+        counts.join(" UNION ALL ")
+    );
+    let batches = ctx.sql(&sql).await?.collect().await?;
+    let weight = |b: &RecordBatch| b.column(1).as_primitive::<datafusion::arrow::datatypes::Int64Type>().clone();
+    let total: u64 = batches
+        .iter()
+        .map(|b| weight(b).iter().flatten().sum::<i64>() as u64)
+        .sum();
+    let k = total.div_ceil(rows.max(1));
+    if k <= 1 {
+        return Ok(vec![KeyRange::all()]);
+    }
+    let (mut ranges, mut from, mut acc, mut cut) = (Vec::new(), None, 0u64, 1u64);
+    for b in &batches {
+        let n = weight(b);
+        for i in 0..b.num_rows() {
+            // A new range starts at the first key past the next k-th of the total.
+            if acc >= total * cut / k {
+                let Some(key) = key_literal(b.column(0).as_ref(), i) else {
+                    return Ok(vec![KeyRange::all()]);
+                };
+                ranges.push(KeyRange {
+                    from: from.replace(key.clone()),
+                    to: Some(key),
+                });
+                while acc >= total * cut / k {
+                    cut += 1;
+                }
+            }
+            acc += n.value(i) as u64;
+        }
+    }
+    ranges.push(KeyRange { from, to: None });
+    Ok(ranges)
 }
 
 /// Column types of the registered tile tables, by (source, column).
@@ -134,8 +286,8 @@ struct Branch {
 }
 
 /// The SQL of all snapshots `first..=last` over tile tables registered by
-/// [`crate::tiles::prepare`], ordered by snapshot date then key. `types` comes from
-/// [`tile_types`].
+/// [`crate::tiles::prepare`], ordered by snapshot date then key, for the population keys
+/// in `keys`. `types` comes from [`tile_types`].
 pub fn range_query(
     pipeline: &Pipeline,
     layouts: &BTreeMap<String, TileLayout>,
@@ -143,6 +295,7 @@ pub fn range_query(
     last: NaiveDate,
     mode: KnowledgeOverride,
     types: &TileTypes,
+    keys: &KeyRange,
 ) -> String {
     let ty = |source: &str, col: String| types.get(&(source.to_string(), col));
     // The type of every union column, for typed NULLs.
@@ -168,7 +321,8 @@ pub fn range_query(
                 first_day,
                 read.last_day,
                 read.knowledge,
-                nn
+                nn,
+                keys,
             )
         ));
         // Ranks for first/last values, in the naive path's order.
@@ -450,6 +604,7 @@ pub fn range_query(
                             read.last_day,
                             read.knowledge,
                             nn,
+                            keys,
                         )
                     };
                     let body = match w {
@@ -607,10 +762,31 @@ pub async fn build_range(
         .await
         .map_err(engine(first))?;
     let types = tile_types(ctx, layouts).await;
-    let sql = range_query(pipeline, layouts, first, last, mode, &types);
-    let df = ctx.sql(&sql).await.map_err(engine(first))?;
-    let mut stream = df.execute_stream().await.map_err(engine(first))?;
-    let schema = stream.schema();
+    let ranges = key_ranges(
+        ctx,
+        pipeline,
+        layouts,
+        first,
+        last,
+        mode,
+        work_rows_per_query(ctx),
+    )
+    .await
+    .map_err(engine(first))?;
+    let (schema, mut stream) = if ranges.len() <= 1 {
+        let sql = range_query(pipeline, layouts, first, last, mode, &types, &KeyRange::all());
+        let df = ctx.sql(&sql).await.map_err(engine(first))?;
+        let stream = df.execute_stream().await.map_err(engine(first))?;
+        (stream.schema(), stream.boxed())
+    } else {
+        let queries = ranges
+            .iter()
+            .map(|r| range_query(pipeline, layouts, first, last, mode, &types, r));
+        let merge = KeyRangeMerge::spill(ctx, queries)
+            .await
+            .map_err(engine(first))?;
+        (merge.schema.clone(), futures::stream::iter(merge).boxed())
+    };
     let date_col = schema
         .index_of("snapshot_date")
         .map_err(|e| engine(first)(e.into()))?;
@@ -624,6 +800,7 @@ pub async fn build_range(
         staged_check,
         on_day,
         reports: Vec::new(),
+        queries: ranges.len(),
     };
     let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();
     let mut current: Option<(DayWriter, Instant)> = None;
@@ -678,6 +855,163 @@ pub async fn build_range(
     Ok(publisher.reports)
 }
 
+/// The results of one range query per key range, each spilled to a temporary Arrow file
+/// in the session's spill folder, read back day by day: all rows of a day from the first
+/// range, then the second..., so that the rows come out ordered by (date, key) as one
+/// query's would. Holds one batch per range in memory.
+struct KeyRangeMerge {
+    schema: datafusion::arrow::datatypes::SchemaRef,
+    date_col: usize,
+    cursors: Vec<SpillCursor>,
+    ready: std::collections::VecDeque<RecordBatch>,
+    /// Deleted when the merge is dropped.
+    _files: Vec<std::sync::Arc<dyn datafusion::execution::SpillFile>>,
+}
+
+/// Reads one spilled range query.
+struct SpillCursor {
+    reader: datafusion::arrow::ipc::reader::StreamReader<std::io::BufReader<std::fs::File>>,
+    batch: Option<RecordBatch>,
+    pos: usize,
+}
+
+impl SpillCursor {
+    /// The date of the next row (reading the next batch when needed).
+    fn peek(&mut self, date_col: usize) -> datafusion::error::Result<Option<i32>> {
+        loop {
+            if let Some(b) = &self.batch {
+                if self.pos < b.num_rows() {
+                    return Ok(Some(date_at(b, date_col, self.pos)?));
+                }
+            }
+            match self.reader.next() {
+                Some(b) => {
+                    self.batch = Some(b?);
+                    self.pos = 0;
+                }
+                None => {
+                    self.batch = None;
+                    return Ok(None);
+                }
+            }
+        }
+    }
+
+    /// Moves the rows of day `d` into `out`.
+    fn take(
+        &mut self,
+        date_col: usize,
+        d: i32,
+        out: &mut std::collections::VecDeque<RecordBatch>,
+    ) -> datafusion::error::Result<()> {
+        while self.peek(date_col)? == Some(d) {
+            let Some(b) = &self.batch else { break };
+            let mut end = self.pos;
+            while end < b.num_rows() && date_at(b, date_col, end)? == d {
+                end += 1;
+            }
+            out.push_back(b.slice(self.pos, end - self.pos));
+            self.pos = end;
+        }
+        Ok(())
+    }
+}
+
+/// The snapshot date (days since 1970-01-01) of row `i`.
+fn date_at(b: &RecordBatch, col: usize, i: usize) -> datafusion::error::Result<i32> {
+    b.column(col)
+        .as_primitive_opt::<Date32Type>()
+        .map(|d| d.value(i))
+        .ok_or_else(|| datafusion::error::DataFusionError::Internal("snapshot_date is not a date".into()))
+}
+
+impl KeyRangeMerge {
+    /// Runs each query in turn and spills its result (Arrow IPC, LZ4 when available).
+    async fn spill(
+        ctx: &SessionContext,
+        queries: impl Iterator<Item = String>,
+    ) -> datafusion::error::Result<Self> {
+        use datafusion::arrow::ipc::writer::{IpcWriteOptions, StreamWriter};
+        let mut files = Vec::new();
+        let mut schema = None;
+        for sql in queries {
+            let mut stream = ctx.sql(&sql).await?.execute_stream().await?;
+            let s = schema.get_or_insert_with(|| stream.schema()).clone();
+            let file = ctx
+                .runtime_env()
+                .disk_manager
+                .create_tmp_file("daymark backfill key range")?;
+            let options = IpcWriteOptions::default()
+                .try_with_compression(Some(datafusion::arrow::ipc::CompressionType::LZ4_FRAME))
+                .unwrap_or_default();
+            let mut w = StreamWriter::try_new_with_options(
+                std::io::BufWriter::new(file.open_writer()?),
+                &s,
+                options,
+            )?;
+            while let Some(b) = stream.next().await {
+                w.write(&b?)?;
+            }
+            w.finish()?;
+            let mut inner = w.into_inner()?.into_inner().map_err(|e| e.into_error())?;
+            inner.finish()?;
+            files.push(file);
+        }
+        let schema = schema.ok_or_else(|| {
+            datafusion::error::DataFusionError::Internal("no key range to run".into())
+        })?;
+        let mut cursors = Vec::new();
+        for f in &files {
+            let path = f.path().ok_or_else(|| {
+                datafusion::error::DataFusionError::Internal(
+                    "the spill folder is not a local folder".into(),
+                )
+            })?;
+            let reader = datafusion::arrow::ipc::reader::StreamReader::try_new(
+                std::io::BufReader::new(std::fs::File::open(path)?),
+                None,
+            )?;
+            cursors.push(SpillCursor {
+                reader,
+                batch: None,
+                pos: 0,
+            });
+        }
+        Ok(KeyRangeMerge {
+            date_col: schema.index_of("snapshot_date")?,
+            schema,
+            cursors,
+            ready: Default::default(),
+            _files: files,
+        })
+    }
+}
+
+impl Iterator for KeyRangeMerge {
+    type Item = datafusion::error::Result<RecordBatch>;
+
+    fn next(&mut self) -> Option<Self::Item> {
+        if let Some(b) = self.ready.pop_front() {
+            return Some(Ok(b));
+        }
+        let mut day: Option<i32> = None;
+        for c in &mut self.cursors {
+            match c.peek(self.date_col) {
+                Ok(Some(d)) => day = Some(day.map_or(d, |x| x.min(d))),
+                Ok(None) => {}
+                Err(e) => return Some(Err(e)),
+            }
+        }
+        let d = day?;
+        for c in &mut self.cursors {
+            if let Err(e) = c.take(self.date_col, d, &mut self.ready) {
+                return Some(Err(e));
+            }
+        }
+        self.ready.pop_front().map(Ok)
+    }
+}
+
 /// Publishes the per-day files of a range, in date order: provenance into the footer,
 /// checks, rename, then tells `on_day`.
 struct Publisher<'a, F: FnMut(&DayReport)> {
@@ -690,6 +1024,8 @@ struct Publisher<'a, F: FnMut(&DayReport)> {
     staged_check: Option<&'a dyn StagedCheck>,
     on_day: F,
     reports: Vec<DayReport>,
+    /// Queries (ranges of keys) the rows come from.
+    queries: usize,
 }
 
 impl<F: FnMut(&DayReport)> Publisher<'_, F> {
@@ -725,6 +1061,7 @@ impl<F: FnMut(&DayReport)> Publisher<'_, F> {
             bytes,
             seconds: t0.elapsed().as_secs_f64(),
             warnings,
+            queries: self.queries,
         };
         (self.on_day)(&r);
         self.reports.push(r);

@@ -114,6 +114,9 @@ pub struct DayReport {
     pub seconds: f64,
     /// Checks that failed but were configured to warn.
     pub warnings: Vec<String>,
+    /// Queries whose results make up the day: 1, or the number of ranges of keys a
+    /// backfill too large for its memory was cut into.
+    pub queries: usize,
 }
 
 /// Running tallies for one feature's expectations.
@@ -583,6 +586,7 @@ pub async fn build_day_checked(
         bytes,
         seconds: t0.elapsed().as_secs_f64(),
         warnings,
+        queries: 1,
     })
 }
 

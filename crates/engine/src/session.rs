@@ -14,7 +14,15 @@ pub struct EngineOptions {
     pub memory_limit: Option<usize>,
     /// Parallelism (default: the number of cores).
     pub target_partitions: Option<usize>,
+    /// Working-set rows (tile rows plus key-days) one backfill query may hold before the
+    /// backfill is cut into ranges of keys (default: what `memory_limit` holds; see
+    /// [`crate::backfill`]).
+    pub backfill_rows_per_query: Option<u64>,
 }
+
+/// [`EngineOptions::backfill_rows_per_query`], kept in the session's configuration.
+#[derive(Debug, Clone, Copy)]
+pub struct BackfillRowsPerQuery(pub u64);
 
 /// A session with the given limits and daymark's window functions
 /// ([`crate::functions`]). Spill files go to the system's temporary folder.
@@ -27,8 +35,24 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
         .execution
         .parquet
         .schema_force_view_types = false;
+    if let Some(limit) = opts.memory_limit {
+        // Each sort keeps this much back for merging its spilled runs (10 MB by default,
+        // more than a small limit's fair share): a thirty-second of the limit.
+        let execution = &mut config.options_mut().execution;
+        execution.sort_spill_reservation_bytes =
+            execution.sort_spill_reservation_bytes.min(limit / 32);
+        // A plan of many operators shares a small limit fairly among dozens of spilling
+        // consumers; one batch of 8,192 rows can then be more than a consumer's share
+        // (measured: a 40 MiB limit on the 10M-event benchmark). Smaller batches under a
+        // small limit: a batch per 16 KiB of limit, between 1,024 and the default.
+        let batch = config.batch_size().min((limit / (16 << 10)).max(1024));
+        config = config.with_batch_size(batch);
+    }
     if let Some(n) = opts.target_partitions {
         config = config.with_target_partitions(n.max(1));
+    }
+    if let Some(n) = opts.backfill_rows_per_query {
+        config = config.with_extension(Arc::new(BackfillRowsPerQuery(n.max(1))));
     }
     let mut runtime =
         RuntimeEnvBuilder::new().with_disk_manager_builder(DiskManagerBuilder::default());

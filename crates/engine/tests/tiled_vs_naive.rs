@@ -7,7 +7,7 @@ use arrow::compute::concat_batches;
 use arrow::datatypes::{DataType, Float64Type};
 use arrow::util::display::array_value_to_string;
 use chrono::NaiveDate;
-use daymark_engine::backfill::{range_query, tile_types};
+use daymark_engine::backfill::{build_range, key_ranges, range_query, tile_types, KeyRange};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
 use daymark_engine::{inspect_sources, register_sources, snapshot_query};
 use daymark_spec::Knowledge;
@@ -95,6 +95,49 @@ fn assert_same(a: &RecordBatch, b: &RecordBatch, what: &str) {
     }
 }
 
+/// `build_range` in a session with a memory limit and a small working set per query (so
+/// the range is cut into ranges of keys, each spilled and merged back by day) publishes,
+/// for each day, the rows of the one-query result `all`.
+async fn range_under_memory_limit(
+    pipeline: &daymark_spec::Pipeline,
+    reports: &std::collections::BTreeMap<String, daymark_engine::SourceReport>,
+    ls: &std::collections::BTreeMap<String, daymark_engine::tiles::TileLayout>,
+    out: &daymark_store::Location,
+    days: &[NaiveDate],
+    all: &RecordBatch,
+) {
+    let opts = daymark_engine::session::EngineOptions {
+        memory_limit: Some(64 << 20),
+        backfill_rows_per_query: Some(4_000),
+        ..Default::default()
+    };
+    let ctx = daymark_engine::session::session(&opts).unwrap();
+    register_sources(&ctx, pipeline, reports).await.unwrap();
+    let stats = prepare(&ctx, pipeline, reports, ls, out, days, None)
+        .await
+        .unwrap();
+    assert!(stats.values().all(|s| s.partitions_built == 0), "tiles reused");
+    let mut published = 0;
+    let reports = build_range(&ctx, pipeline, ls, out, days, None, None, |_| published += 1)
+        .await
+        .unwrap();
+    assert_eq!(published, days.len());
+    assert!(reports.iter().all(|r| r.queries >= 3), "{:?}", reports[0]);
+    for d in days {
+        let path = daymark_engine::build::snapshot_path(out, None, *d);
+        let file = std::fs::File::open(format!("/{path}"))
+            .unwrap_or_else(|e| panic!("{path}: {e}"));
+        let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
+            .unwrap()
+            .build()
+            .unwrap();
+        let batches: Vec<RecordBatch> = reader.map(Result::unwrap).collect();
+        let expected = rows_of_day(all, *d);
+        let got = concat_batches(&expected.schema(), &batches).unwrap();
+        assert_same(&expected, &got, &format!("memory-limited build {d}"));
+    }
+}
+
 /// A 120-day backfill (2026-02-16 to 2026-06-15, across the daylight-saving change of
 /// 2026-03-08 in America/Chicago) of a small demo world with late arrivals and
 /// re-deliveries: the set-based range query equals the naive path for every cell of every
@@ -143,8 +186,27 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
     let floats = tile_types(&ctx, &ls).await;
     for mode in [None, Some(Knowledge::EventTime)] {
         // The whole range as one set-based query (what a backfill runs).
-        let sql = range_query(&pipeline, &ls, first, last, mode, &floats);
+        let sql = range_query(&pipeline, &ls, first, last, mode, &floats, &KeyRange::all());
         let range = run(&ctx, &sql).await;
+        if mode.is_none() {
+            // Cut into ranges of keys (what a backfill too large for memory runs): the
+            // ranges' rows of each day, one range after the other, are the whole query's
+            // rows of that day in the same (key) order.
+            let ranges = key_ranges(&ctx, &pipeline, &ls, first, last, mode, 15_000)
+                .await
+                .unwrap();
+            assert!(ranges.len() >= 3, "{ranges:?}");
+            let mut parts = Vec::new();
+            for r in &ranges {
+                parts.push(run(&ctx, &range_query(&pipeline, &ls, first, last, mode, &floats, r)).await);
+            }
+            for d in &days {
+                let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, *d)).collect();
+                let joined = concat_batches(&of_day[0].schema(), &of_day).unwrap();
+                assert_same(&rows_of_day(&range, *d), &joined, &format!("key ranges {d}"));
+            }
+            range_under_memory_limit(&pipeline, &reports, &ls, &out, &days[..40], &range).await;
+        }
         for (n, d) in days.iter().enumerate() {
             let naive = run(&ctx, &snapshot_query(&pipeline, *d, mode).sql).await;
             assert_same(

@@ -461,6 +461,7 @@ async fn build_days(
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit: opts.memory_limit,
         target_partitions: None,
+        ..Default::default()
     })?;
     daymark_engine::register_sources(&ctx, pipeline, &reports).await?;
     daymark_engine::build::write_dictionary(pipeline, &types, out, opts.mode).await?;
@@ -620,6 +621,7 @@ async fn back_fill_labels(
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit: opts.memory_limit,
         target_partitions: None,
+        ..Default::default()
     })?;
     daymark_engine::register_sources(&ctx, pipeline, &reports).await?;
     let watermarks = daymark_labels::source_watermarks(pipeline, &reports);
