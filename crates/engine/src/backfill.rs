@@ -146,7 +146,9 @@ fn work_rows_per_query(ctx: &SessionContext) -> u64 {
         return n.0;
     }
     match ctx.runtime_env().memory_pool.memory_limit() {
-        MemoryLimit::Finite(limit) => (limit as u64 / BYTES_PER_WORK_ROW).clamp(1, WORK_ROWS_PER_QUERY),
+        MemoryLimit::Finite(limit) => {
+            (limit as u64 / BYTES_PER_WORK_ROW).clamp(1, WORK_ROWS_PER_QUERY)
+        }
         _ => WORK_ROWS_PER_QUERY,
     }
 }
@@ -199,7 +201,11 @@ pub async fn key_ranges(
         counts.join(" UNION ALL ")
     );
     let batches = ctx.sql(&sql).await?.collect().await?;
-    let weight = |b: &RecordBatch| b.column(1).as_primitive::<datafusion::arrow::datatypes::Int64Type>().clone();
+    let weight = |b: &RecordBatch| {
+        b.column(1)
+            .as_primitive::<datafusion::arrow::datatypes::Int64Type>()
+            .clone()
+    };
     let total: u64 = batches
         .iter()
         .map(|b| weight(b).iter().flatten().sum::<i64>() as u64)
@@ -774,7 +780,15 @@ pub async fn build_range(
     .await
     .map_err(engine(first))?;
     let (schema, mut stream) = if ranges.len() <= 1 {
-        let sql = range_query(pipeline, layouts, first, last, mode, &types, &KeyRange::all());
+        let sql = range_query(
+            pipeline,
+            layouts,
+            first,
+            last,
+            mode,
+            &types,
+            &KeyRange::all(),
+        );
         let df = ctx.sql(&sql).await.map_err(engine(first))?;
         let stream = df.execute_stream().await.map_err(engine(first))?;
         (stream.schema(), stream.boxed())
@@ -922,7 +936,9 @@ fn date_at(b: &RecordBatch, col: usize, i: usize) -> datafusion::error::Result<i
     b.column(col)
         .as_primitive_opt::<Date32Type>()
         .map(|d| d.value(i))
-        .ok_or_else(|| datafusion::error::DataFusionError::Internal("snapshot_date is not a date".into()))
+        .ok_or_else(|| {
+            datafusion::error::DataFusionError::Internal("snapshot_date is not a date".into())
+        })
 }
 
 impl KeyRangeMerge {

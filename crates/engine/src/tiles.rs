@@ -214,7 +214,10 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, days: &[NaiveDate]) -> String 
         // bookkeeping cost about half of the tile build: measured, docs/benchmarks.md.)
         let part: Vec<String> = source.spec.dedupe_on.iter().map(|c| ident(c)).collect();
         let order = arr.clone().unwrap_or_else(|| ev.clone());
-        let over = format!("OVER (PARTITION BY __part ORDER BY {}, {order})", part.join(", "));
+        let over = format!(
+            "OVER (PARTITION BY __part ORDER BY {}, {order})",
+            part.join(", ")
+        );
         let same: Vec<String> = part
             .iter()
             .map(|c| format!("lag({c}) {over} IS NOT DISTINCT FROM {c}"))

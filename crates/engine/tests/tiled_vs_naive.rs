@@ -116,17 +116,22 @@ async fn range_under_memory_limit(
     let stats = prepare(&ctx, pipeline, reports, ls, out, days, None)
         .await
         .unwrap();
-    assert!(stats.values().all(|s| s.partitions_built == 0), "tiles reused");
+    assert!(
+        stats.values().all(|s| s.partitions_built == 0),
+        "tiles reused"
+    );
     let mut published = 0;
-    let reports = build_range(&ctx, pipeline, ls, out, days, None, None, |_| published += 1)
-        .await
-        .unwrap();
+    let reports = build_range(&ctx, pipeline, ls, out, days, None, None, |_| {
+        published += 1
+    })
+    .await
+    .unwrap();
     assert_eq!(published, days.len());
     assert!(reports.iter().all(|r| r.queries >= 3), "{:?}", reports[0]);
     for d in days {
         let path = daymark_engine::build::snapshot_path(out, None, *d);
-        let file = std::fs::File::open(format!("/{path}"))
-            .unwrap_or_else(|e| panic!("{path}: {e}"));
+        let file =
+            std::fs::File::open(format!("/{path}")).unwrap_or_else(|e| panic!("{path}: {e}"));
         let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
             .unwrap()
             .build()
@@ -198,12 +203,22 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
             assert!(ranges.len() >= 3, "{ranges:?}");
             let mut parts = Vec::new();
             for r in &ranges {
-                parts.push(run(&ctx, &range_query(&pipeline, &ls, first, last, mode, &floats, r)).await);
+                parts.push(
+                    run(
+                        &ctx,
+                        &range_query(&pipeline, &ls, first, last, mode, &floats, r),
+                    )
+                    .await,
+                );
             }
             for d in &days {
                 let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, *d)).collect();
                 let joined = concat_batches(&of_day[0].schema(), &of_day).unwrap();
-                assert_same(&rows_of_day(&range, *d), &joined, &format!("key ranges {d}"));
+                assert_same(
+                    &rows_of_day(&range, *d),
+                    &joined,
+                    &format!("key ranges {d}"),
+                );
             }
             range_under_memory_limit(&pipeline, &reports, &ls, &out, &days[..40], &range).await;
         }
