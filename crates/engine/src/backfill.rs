@@ -69,11 +69,8 @@ fn visible_tile_rows(
     let mut conds = vec![
         "__key IS NOT NULL".to_string(),
         "__t IS NOT NULL".to_string(),
-        format!("dt <= {}", literal(&last.to_string())),
     ];
-    if let Some(f) = first {
-        conds.push(format!("dt >= {}", literal(&f.to_string())));
-    }
+    conds.extend(crate::tiles::partitions_between(first, last));
     conds.extend(keys.conditions());
     format!(
         "SELECT * FROM (SELECT {columns}, CAST(__t AS BIGINT) AS __tn, {} AS __vn FROM {table} WHERE {}) WHERE __vn IS NOT NULL AND __vn <= {until}",
@@ -173,13 +170,9 @@ pub async fn key_ranges(
         let Some(read) = reads_last.get(name) else {
             continue;
         };
-        let mut conds = vec![
-            "__key IS NOT NULL".to_string(),
-            format!("dt <= {}", literal(&read.last_day.to_string())),
-        ];
-        if let Some(f) = reads_first.get(name).and_then(|r| r.first_day) {
-            conds.push(format!("dt >= {}", literal(&f.to_string())));
-        }
+        let first_day = reads_first.get(name).and_then(|r| r.first_day);
+        let mut conds = vec!["__key IS NOT NULL".to_string()];
+        conds.extend(crate::tiles::partitions_between(first_day, read.last_day));
         let tables = std::iter::once(l.table())
             .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
         for t in tables {

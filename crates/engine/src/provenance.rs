@@ -97,12 +97,12 @@ pub fn tiles_sql(
     let last = day.pred_opt()?;
     let mut conds = vec![
         "__key IS NOT NULL".to_string(),
-        format!("dt <= {}", literal(&read.last_day.to_string())),
         format!("__t <= {}", date(last)),
     ];
-    if let Some(f) = read.first_day {
-        conds.push(format!("dt >= {}", literal(&f.to_string())));
-    }
+    conds.extend(crate::tiles::partitions_between(
+        read.first_day,
+        read.last_day,
+    ));
     if read.knowledge == Knowledge::AsKnown {
         conds.push(format!("__a <= {}", date(last)));
     }

@@ -490,6 +490,16 @@ fn fingerprint(files: &[DataFile]) -> serde_json::Value {
 }
 
 /// Where the fingerprint of partition `day`'s tile is kept.
+/// SQL conditions selecting tile partitions `first..=last` (`dt`; no lower bound without
+/// `first`).
+pub(crate) fn partitions_between(first: Option<NaiveDate>, last: NaiveDate) -> Vec<String> {
+    let mut conds = vec![format!("dt <= {}", literal(&last.to_string()))];
+    if let Some(f) = first {
+        conds.push(format!("dt >= {}", literal(&f.to_string())));
+    }
+    conds
+}
+
 fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
     child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"])
 }
@@ -664,12 +674,9 @@ pub fn tiled_snapshot_query(
         let read = &naive.reads[source];
         let mut conds = vec![
             "__key IS NOT NULL".to_string(),
-            format!("dt <= {}", literal(&read.last_day.to_string())),
             format!("__t <= {}", date(last)),
         ];
-        if let Some(f) = read.first_day {
-            conds.push(format!("dt >= {}", literal(&f.to_string())));
-        }
+        conds.extend(partitions_between(read.first_day, read.last_day));
         if read.knowledge == daymark_spec::Knowledge::AsKnown {
             conds.push(format!("__a <= {}", date(last)));
         }
@@ -768,10 +775,7 @@ pub fn tiled_snapshot_query(
                 let cte = format!("{source}__d{i}__agg");
                 let mut conds = vec![format!("__t <= {}", date(last))];
                 let read = &naive.reads[source];
-                conds.push(format!("dt <= {}", literal(&read.last_day.to_string())));
-                if let Some(fd) = read.first_day {
-                    conds.push(format!("dt >= {}", literal(&fd.to_string())));
-                }
+                conds.extend(partitions_between(read.first_day, read.last_day));
                 if read.knowledge == daymark_spec::Knowledge::AsKnown {
                     conds.push(format!("__a <= {}", date(last)));
                 }
