@@ -207,7 +207,25 @@ pub async fn acquire(
             .await
         {
             Ok(_) => {}
-            Err(object_store::Error::AlreadyExists { .. }) => return Ok(Acquire::Held(held)),
+            Err(object_store::Error::AlreadyExists { .. }) => {
+                // Another run claimed this lock first. A claimant killed between its claim
+                // and its write of the lock leaves the claim behind: the claim is a lock
+                // on the takeover and ends by the same rule, then the takeover is retried.
+                let stale = match out.store.get(&claim).await {
+                    Ok(r) => r
+                        .bytes()
+                        .await
+                        .ok()
+                        .and_then(|b| serde_json::from_slice::<LockInfo>(&b).ok())
+                        .is_some_and(|c| takeover_reason(&c, run).is_some()),
+                    Err(_) => false,
+                };
+                if stale {
+                    let _ = out.store.delete(&claim).await;
+                    continue;
+                }
+                return Ok(Acquire::Held(held));
+            }
             Err(e) => return Err(store_err(&claim, e)),
         }
         out.store
@@ -366,6 +384,57 @@ mod tests {
         };
         assert!(msg.contains("lease ended"), "{msg}");
         // The lock now names the run that took it over.
+        assert_eq!(read(&out).await.unwrap().unwrap().0.owner, me.run_id);
+        g.release().await.unwrap();
+    }
+
+    #[tokio::test]
+    async fn a_claim_left_by_a_killed_claimant_does_not_block_the_takeover() {
+        let dir = tempfile::tempdir().unwrap();
+        let out = daymark_store::resolve(dir.path().to_str().unwrap(), None).unwrap();
+        let me = RunIdentity::current();
+        // A holder whose lease has passed, and a claim on its takeover by a run whose
+        // lease has passed too (killed after its claim, before it wrote the lock).
+        let Acquire::Acquired(g, _) = acquire(
+            &out,
+            &run_as(1, "elsewhere"),
+            "run",
+            Duration::from_millis(1),
+        )
+        .await
+        .unwrap() else {
+            panic!("free");
+        };
+        std::mem::forget(g);
+        let (_, raw) = read(&out).await.unwrap().unwrap();
+        let claim = daymark_engine::build::child(
+            &out.prefix,
+            &[
+                LOCK_DIR,
+                &format!(
+                    "takeover-{}.json",
+                    &daymark_spec::hash::hash_value(&serde_json::json!(String::from_utf8_lossy(
+                        &raw
+                    )))[..16]
+                ),
+            ],
+        );
+        let claimant = fresh_info(&run_as(2, "elsewhere"), "run", Duration::from_millis(1));
+        out.store
+            .put(
+                &claim,
+                PutPayload::from(serde_json::to_vec(&claimant).unwrap()),
+            )
+            .await
+            .unwrap();
+        tokio::time::sleep(Duration::from_millis(20)).await;
+        let Acquire::Acquired(g, Some(msg)) = acquire(&out, &me, "run", Duration::from_secs(60))
+            .await
+            .unwrap()
+        else {
+            panic!("a stale claim blocked the takeover");
+        };
+        assert!(msg.contains("lease ended"), "{msg}");
         assert_eq!(read(&out).await.unwrap().unwrap().0.owner, me.run_id);
         g.release().await.unwrap();
     }
