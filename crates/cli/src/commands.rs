@@ -184,28 +184,42 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     let log = crate::report::Report::new(&args.log_format);
     let tiled = args.engine == "tiled";
     let layouts = daymark_engine::tiles::layouts(&pipeline);
+    let mut plan: Option<daymark_engine::rollups::DayPlan> = None;
     if tiled {
         let t_tiles = std::time::Instant::now();
-        let per_source =
+        // One day: its pieces (tiles at the edges of its windows, roll-ups of whole weeks
+        // and months between). A range: the tiles of every day.
+        let per_source = if days.len() == 1 {
+            let (stats, day_plan) = daymark_engine::rollups::plan_day(
+                &ctx, &pipeline, &reports, &layouts, &out, days[0], mode, false,
+            )
+            .await
+            .map_err(|e| memory_hint(e.into()))?;
+            plan = Some(day_plan);
+            stats
+        } else {
             daymark_engine::tiles::prepare(&ctx, &pipeline, &reports, &layouts, &out, &days, mode)
                 .await
-                .map_err(|e| memory_hint(e.into()))?;
+                .map_err(|e| memory_hint(e.into()))?
+        };
         let mut total = daymark_engine::tiles::TileStats::default();
         for (source, stats) in &per_source {
             log.event(
                 "tiles",
                 || {
                     format!(
-                        "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused; ignored {} row(s) with a null key; {} row(s) with an event time after their arrival",
+                        "tiles {source}: {} partition(s) built from {} raw file(s) ({}), {} reused; {} week/month roll-up(s) built, {} reused; ignored {} row(s) with a null key; {} row(s) with an event time after their arrival",
                         stats.partitions_built,
                         stats.raw_files,
                         human_bytes(stats.raw_bytes),
                         stats.partitions_reused,
+                        stats.rollups_built,
+                        stats.rollups_reused,
                         stats.null_key_rows,
                         stats.event_after_arrival_rows
                     )
                 },
-                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.null_key_rows, "event_after_arrival_rows": stats.event_after_arrival_rows}),
+                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "rollups_built": stats.rollups_built, "rollups_reused": stats.rollups_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.null_key_rows, "event_after_arrival_rows": stats.event_after_arrival_rows}),
             );
             total.add(stats);
         }
@@ -249,12 +263,33 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         if let Err(e) = result {
             return report_build_error(&log, e);
         }
+        // Roll up whole months (and the weeks the next day needs) now, while the tiles are
+        // fresh, so that the daily builds after this backfill read a few dozen pieces.
+        let t_roll = std::time::Instant::now();
+        let next = days[days.len() - 1] + chrono::Duration::days(1);
+        match daymark_engine::rollups::plan_day(
+            &ctx, &pipeline, &reports, &layouts, &out, next, mode, true,
+        )
+        .await
+        {
+            Ok((stats, _)) => {
+                let built: u64 = stats.values().map(|s| s.rollups_built).sum();
+                let secs = t_roll.elapsed().as_secs_f64();
+                log.event(
+                    "rollups",
+                    || format!("rolled up {built} week(s) and month(s) of tiles for the daily builds ({secs:.1} s)"),
+                    json!({"rollups_built": built, "seconds": secs}),
+                );
+            }
+            Err(e) => return report_build_error(&log, e),
+        }
     } else {
         for (i, day) in days.iter().enumerate() {
-            let query = if tiled {
-                daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, *day, mode)
-            } else {
-                snapshot_query(&pipeline, *day, mode)
+            let query = match &plan {
+                Some(p) => {
+                    daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, p, mode)
+                }
+                None => snapshot_query(&pipeline, *day, mode),
             };
             match daymark_engine::build::build_day_checked(
                 &ctx,
@@ -263,7 +298,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                 *day,
                 mode,
                 &query.sql,
-                tiled.then_some(&layouts),
+                plan.as_ref().map(|p| (&layouts, p)),
                 Some(&staged_checks),
             )
             .await

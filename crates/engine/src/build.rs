@@ -557,7 +557,7 @@ pub async fn build_day_checked(
     day: NaiveDate,
     mode: KnowledgeOverride,
     sql: &str,
-    tiles: Option<&BTreeMap<String, crate::tiles::TileLayout>>,
+    tiles: Option<crate::provenance::Tiled<'_>>,
     staged_check: Option<&dyn StagedCheck>,
 ) -> Result<DayReport, BuildError> {
     let t0 = Instant::now();

@@ -4,11 +4,13 @@
 //! - [`check`]: check a pipeline against the sources' real schemas (columns, types, filters).
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
-//! - [`functions`]: daymark's running-sum/min/max window functions and their plan codec.
+//! - [`functions`]: daymark's running-sum/min/max window functions (an executor must
+//!   register them: no plan codec ships yet).
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
+//! - [`rollups`]: tiles of whole weeks and months, and the pieces a daily snapshot reads.
 //! - [`provenance`]: per source, the latest event and arrival time a snapshot read.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
@@ -17,6 +19,7 @@ pub mod build;
 pub mod check;
 pub mod functions;
 pub mod provenance;
+pub mod rollups;
 pub mod session;
 pub mod sources;
 pub mod sql;

@@ -9,9 +9,9 @@
 //! [`METADATA_KEY`]) so that it is published in the same rename as the data. The audit
 //! checks that both times are before the cutoff.
 //!
-//! Limit: the lower bound is the first day partition read, not the exact window start, so
-//! when a source has no row inside a window the latest event may be an older one that no
-//! feature used. That never hides a row read past the cutoff.
+//! Limit: the lower bound is the earliest window start (raw: the first day partition
+//! read), so when a source has no row inside a shorter window the latest event may be one
+//! that this feature did not use. That never hides a row read past the cutoff.
 
 use crate::sql::{ident, literal, snapshot_query, ts_literal, KnowledgeOverride};
 use arrow::array::{Array, AsArray};
@@ -82,30 +82,19 @@ pub fn source_sql(
     ))
 }
 
-/// The same aggregate over the tile rows a tiled snapshot of `day` reads: tiles keep the
-/// latest event and arrival time of each (key, event day, arrival day) row (`__mev`,
-/// `__mar`), and days run from one cutoff to the next, so the day filters select exactly
-/// the rows the cutoff filters would.
+/// The same aggregate over the pieces a tiled snapshot reads ([`crate::rollups`]): tiles
+/// and roll-ups keep the latest event and arrival time of their rows (`__mev`, `__mar`)
+/// and how many raw rows they combine, and days run from one cutoff to the next, so the
+/// pieces hold exactly the rows the cutoff filters would pass (from the earliest window
+/// start on).
 pub fn tiles_sql(
     pipeline: &Pipeline,
     layout: &crate::tiles::TileLayout,
     read: &crate::sql::SourceRead,
+    pieces: &crate::rollups::Pieces,
     day: NaiveDate,
 ) -> Option<String> {
     let src = pipeline.sources.get(&layout.source)?;
-    let date = |d: NaiveDate| format!("CAST({} AS DATE)", literal(&d.to_string()));
-    let last = day.pred_opt()?;
-    let mut conds = vec![
-        "__key IS NOT NULL".to_string(),
-        format!("__t <= {}", date(last)),
-    ];
-    conds.extend(crate::tiles::partitions_between(
-        read.first_day,
-        read.last_day,
-    ));
-    if read.knowledge == Knowledge::AsKnown {
-        conds.push(format!("__a <= {}", date(last)));
-    }
     let ts = |c: &str| format!("arrow_cast(MAX({c}), 'Timestamp(Microsecond, Some(\"UTC\"))')");
     let arrival = if src.spec.arrival_time.is_some() {
         ts("__mar")
@@ -113,27 +102,34 @@ pub fn tiles_sql(
         "arrow_cast(NULL, 'Timestamp(Microsecond, Some(\"UTC\"))')".to_string()
     };
     Some(format!(
-        "SELECT {} AS max_event, {arrival} AS max_arrival, CAST(SUM(__rows) AS BIGINT) AS n FROM {} WHERE {}",
+        "SELECT {} AS max_event, {arrival} AS max_arrival, CAST(SUM(__rows) AS BIGINT) AS n FROM ({})",
         ts("__mev"),
-        ident(&layout.table()),
-        conds.join(" AND ")
+        crate::rollups::pieces_sql(pipeline, layout, pieces, day, read.knowledge, false)
     ))
 }
 
 /// Computes the provenance of snapshot `day`: from the raw sources (registered as tables)
-/// or, with `tiles`, from the tiles (registered by `tiles::register_tiles`).
+/// or, with `tiles`, from the pieces of its plan (registered by
+/// [`crate::rollups::plan_day`]).
 pub async fn provenance(
     ctx: &SessionContext,
     pipeline: &Pipeline,
     day: NaiveDate,
     mode: KnowledgeOverride,
-    tiles: Option<&BTreeMap<String, crate::tiles::TileLayout>>,
+    tiles: Option<Tiled<'_>>,
 ) -> Result<Provenance> {
     let q = snapshot_query(pipeline, day, mode);
     let mut sources = BTreeMap::new();
+    let no_pieces = crate::rollups::Pieces::default();
     for (name, read) in &q.reads {
-        let sql = match tiles.map(|t| t.get(name)) {
-            Some(Some(layout)) => tiles_sql(pipeline, layout, read, day),
+        let sql = match tiles.map(|(l, plan)| (l.get(name), plan)) {
+            Some((Some(layout), plan)) => tiles_sql(
+                pipeline,
+                layout,
+                read,
+                plan.sources.get(name).unwrap_or(&no_pieces),
+                day,
+            ),
             _ => source_sql(pipeline, name, read),
         };
         let Some(sql) = sql else {
@@ -165,6 +161,12 @@ pub async fn provenance(
         sources,
     })
 }
+
+/// The tile layouts and the plan of a tiled snapshot.
+pub type Tiled<'a> = (
+    &'a BTreeMap<String, crate::tiles::TileLayout>,
+    &'a crate::rollups::DayPlan,
+);
 
 /// An instant as RFC 3339 UTC with microseconds, the form used in provenance.
 pub fn rfc3339(t: DateTime<Utc>) -> String {

@@ -54,8 +54,15 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     if let Some(n) = opts.backfill_rows_per_query {
         config = config.with_extension(Arc::new(BackfillRowsPerQuery(n.max(1))));
     }
-    let mut runtime =
-        RuntimeEnvBuilder::new().with_disk_manager_builder(DiskManagerBuilder::default());
+    let mut runtime = RuntimeEnvBuilder::new()
+        .with_disk_manager_builder(DiskManagerBuilder::default())
+        // No cache of folder listings: a session writes tiles and roll-ups and then
+        // reads them, and DataFusion's default cache (no expiry) would hide the new
+        // files from a table registered again over the same folder.
+        .with_cache_manager(
+            datafusion::execution::cache::cache_manager::CacheManagerConfig::default()
+                .with_list_files_cache_limit(0),
+        );
     if let Some(limit) = opts.memory_limit {
         // A fair pool: several sorts and aggregations of one plan share the limit evenly
         // and spill, where the default greedy pool let the first sort take it all and the

@@ -291,7 +291,7 @@ pub fn distinct_sql(
 /// each through staging and rename. Days without rows get an empty file. On an error the
 /// file being written is dropped; files already published are whole (their fingerprints
 /// are not written yet, so they are rebuilt next time).
-async fn write_split(
+pub(crate) async fn write_split(
     ctx: &SessionContext,
     sql: &str,
     out: &Location,
@@ -389,6 +389,10 @@ pub struct TileStats {
     pub null_key_rows: u64,
     /// Rows whose event time is after their arrival time beyond the tolerance.
     pub event_after_arrival_rows: u64,
+    /// Week and month roll-ups built (or rebuilt) ([`crate::rollups`]).
+    pub rollups_built: u64,
+    /// Roll-ups whose stored copy was still current.
+    pub rollups_reused: u64,
 }
 
 impl TileStats {
@@ -400,6 +404,8 @@ impl TileStats {
         self.raw_bytes += other.raw_bytes;
         self.null_key_rows += other.null_key_rows;
         self.event_after_arrival_rows += other.event_after_arrival_rows;
+        self.rollups_built += other.rollups_built;
+        self.rollups_reused += other.rollups_reused;
     }
 }
 
@@ -454,35 +460,19 @@ pub async fn prepare(
             set.first().expect("not empty"),
             set.last().expect("not empty"),
         );
-        let counts = format!(
-            "SELECT CAST(COALESCE(SUM(__rows) FILTER (WHERE __key IS NULL), 0) AS BIGINT), CAST(COALESCE(SUM(__ahead), 0) AS BIGINT) FROM {} WHERE dt >= {} AND dt <= {}",
+        let rows = format!(
+            "SELECT * FROM {} WHERE dt >= {} AND dt <= {}",
             ident(&layout.table()),
             literal(&first.to_string()),
             literal(&last.to_string())
         );
-        let engine = |e| BuildError::Engine {
-            day: days[0],
-            source: e,
-        };
-        let batches = ctx
-            .sql(&counts)
-            .await
-            .map_err(engine)?
-            .collect()
-            .await
-            .map_err(engine)?;
-        if let Some(b) = batches.first().filter(|b| b.num_rows() > 0) {
-            use datafusion::arrow::array::AsArray;
-            use datafusion::arrow::datatypes::Int64Type;
-            s.null_key_rows = b.column(0).as_primitive::<Int64Type>().value(0) as u64;
-            s.event_after_arrival_rows = b.column(1).as_primitive::<Int64Type>().value(0) as u64;
-        }
+        (s.null_key_rows, s.event_after_arrival_rows) = ignored_rows(ctx, &rows, days[0]).await?;
         stats.insert(source.clone(), s);
     }
     Ok(stats)
 }
 
-fn fingerprint(files: &[DataFile]) -> serde_json::Value {
+pub(crate) fn fingerprint(files: &[DataFile]) -> serde_json::Value {
     json!(files
         .iter()
         .map(|f| json!({"path": f.path.to_string(), "size": f.size, "modified": f.modified.to_rfc3339(), "etag": f.etag}))
@@ -498,6 +488,43 @@ pub(crate) fn partitions_between(first: Option<NaiveDate>, last: NaiveDate) -> V
         conds.push(format!("dt >= {}", literal(&f.to_string())));
     }
     conds
+}
+
+/// Runs `sql` to the end; an error is reported against snapshot `day`.
+pub(crate) async fn collect(
+    ctx: &SessionContext,
+    sql: &str,
+    day: NaiveDate,
+) -> Result<Vec<datafusion::arrow::array::RecordBatch>, BuildError> {
+    let engine = |source| BuildError::Engine { day, source };
+    ctx.sql(sql)
+        .await
+        .map_err(engine)?
+        .collect()
+        .await
+        .map_err(engine)
+}
+
+/// Among tile (or piece) rows `rows` (a query with `__key`, `__rows`, `__ahead`): the raw
+/// rows ignored for a null key, and those whose event time is after their arrival.
+pub(crate) async fn ignored_rows(
+    ctx: &SessionContext,
+    rows: &str,
+    day: NaiveDate,
+) -> Result<(u64, u64), BuildError> {
+    use datafusion::arrow::array::AsArray;
+    use datafusion::arrow::datatypes::Int64Type;
+    let sql = format!(
+        "SELECT CAST(COALESCE(SUM(__rows) FILTER (WHERE __key IS NULL), 0) AS BIGINT), CAST(COALESCE(SUM(__ahead), 0) AS BIGINT) FROM ({rows})"
+    );
+    let batches = collect(ctx, &sql, day).await?;
+    Ok(match batches.first().filter(|b| b.num_rows() > 0) {
+        Some(b) => (
+            b.column(0).as_primitive::<Int64Type>().value(0) as u64,
+            b.column(1).as_primitive::<Int64Type>().value(0) as u64,
+        ),
+        None => (0, 0),
+    })
 }
 
 fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
@@ -654,44 +681,30 @@ pub fn layouts(pipeline: &Pipeline) -> BTreeMap<String, TileLayout> {
         .collect()
 }
 
-/// The snapshot of `day` combined from tiles (tables registered by [`register_tiles`]).
+/// The snapshot of `plan.day` combined from the pieces of [`crate::rollups::plan_day`]
+/// (tables it registered): for each source, its day pieces and stored weeks and months,
+/// each with the partials of every feature; a feature keeps the pieces from its window
+/// start on.
 pub fn tiled_snapshot_query(
     pipeline: &Pipeline,
     layouts: &BTreeMap<String, TileLayout>,
-    day: NaiveDate,
+    plan: &crate::rollups::DayPlan,
     mode: crate::sql::KnowledgeOverride,
 ) -> crate::sql::SnapshotQuery {
     use crate::sql::{feature_column, finish, join_source_aggregates};
+    let day = plan.day;
     let naive = crate::sql::snapshot_query(pipeline, day, mode);
     let date = |d: NaiveDate| format!("CAST({} AS DATE)", literal(&d.to_string()));
-    let last = day
-        .pred_opt()
-        .expect("a day after the first representable one");
     let d_days = (day - NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch")).num_days();
+    let no_pieces = crate::rollups::Pieces::default();
+    let pieces = |source: &str| plan.sources.get(source).unwrap_or(&no_pieces);
     let mut ctes = Vec::new();
-    // Rows of each source's tiles that snapshot `day` may see.
-    let visible = |source: &str, table: &str| -> String {
-        let read = &naive.reads[source];
-        let mut conds = vec![
-            "__key IS NOT NULL".to_string(),
-            format!("__t <= {}", date(last)),
-        ];
-        conds.extend(partitions_between(read.first_day, read.last_day));
-        if read.knowledge == daymark_spec::Knowledge::AsKnown {
-            conds.push(format!("__a <= {}", date(last)));
-        }
-        format!(
-            "SELECT * FROM {} WHERE {}",
-            ident(table),
-            conds.join(" AND ")
-        )
-    };
     for (name, l) in layouts {
-        if naive.reads.contains_key(name) {
+        if let Some(read) = naive.reads.get(name) {
             ctes.push(format!(
                 "{} AS ({})",
                 ident(&format!("{name}__rows")),
-                visible(name, &l.table())
+                crate::rollups::pieces_sql(pipeline, l, pieces(name), day, read.knowledge, false)
             ));
         }
     }
@@ -712,7 +725,7 @@ pub fn tiled_snapshot_query(
         }
         Population::RecentActivity(a) => {
             let since = start(a.within)
-                .map(|d| format!(" AND __t >= {}", date(d)))
+                .map(|d| format!(" AND __lo >= {}", date(d)))
                 .unwrap_or_default();
             format!(
                 "SELECT __key FROM {} WHERE __pc > 0{since} GROUP BY __key",
@@ -739,10 +752,11 @@ pub fn tiled_snapshot_query(
             continue;
         };
         let has_arrival = pipeline.sources[source].spec.arrival_time.is_some();
+        // Pieces never straddle a window start: a piece is in the window or not.
         let since = (!agg.is_unbounded())
             .then(|| start(*window))
             .flatten()
-            .map(|d| format!("__t >= {}", date(d)));
+            .map(|d| format!("__lo >= {}", date(d)));
         let with = |extra: Option<String>| -> String {
             let c: Vec<String> = extra.into_iter().chain(since.clone()).collect();
             if c.is_empty() {
@@ -762,29 +776,24 @@ pub fn tiled_snapshot_query(
             ),
             Aggregation::Min => format!("MIN(__m{i}){}", with(None)),
             Aggregation::Max => format!("MAX(__m{i}){}", with(None)),
-            Aggregation::ActiveDays => format!("COUNT(DISTINCT __t){}", with(rows)),
+            // Pieces are disjoint sets of days: their active days add up.
+            Aggregation::ActiveDays => format!("COALESCE(SUM(__ad{i}){}, 0)", with(None)),
             Aggregation::First | Aggregation::Last => {
                 let func = if *agg == Aggregation::First { "first_value" } else { "last_value" };
                 let order = if has_arrival { format!("__vt{i}, __va{i}, __v{i}") } else { format!("__vt{i}, __v{i}") };
                 format!("{func}(__v{i} ORDER BY {order}){}", with(rows))
             }
-            Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__t){} AS BIGINT)", with(rows)),
-            Aggregation::DaysSinceLast => format!("{d_days} - CAST(MAX(__t){} AS BIGINT)", with(rows)),
+            Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__tf{i}) AS BIGINT)"),
+            Aggregation::DaysSinceLast => format!("{d_days} - CAST(MAX(__tl{i}) AS BIGINT)"),
             Aggregation::CountDistinct => {
                 let l = &layouts[source];
-                let cte = format!("{source}__d{i}__agg");
-                let mut conds = vec![format!("__t <= {}", date(last))];
                 let read = &naive.reads[source];
-                conds.extend(partitions_between(read.first_day, read.last_day));
-                if read.knowledge == daymark_spec::Knowledge::AsKnown {
-                    conds.push(format!("__a <= {}", date(last)));
-                }
-                conds.extend(since.clone());
+                let cte = format!("{source}__d{i}__agg");
                 ctes.push(format!(
-                    "{} AS (SELECT __key, COUNT(DISTINCT __v) AS __v FROM {} WHERE {} GROUP BY __key)",
+                    "{} AS (SELECT __key, COUNT(DISTINCT __v) AS __v FROM ({}) WHERE {} GROUP BY __key)",
                     ident(&cte),
-                    ident(&l.distinct_table(i)),
-                    conds.join(" AND ")
+                    crate::rollups::distinct_pieces_sql(l, i, pieces(source), day, read.knowledge),
+                    since.clone().unwrap_or_else(|| "TRUE".to_string())
                 ));
                 joins.push(format!("LEFT JOIN {c} ON {c}.__key = p.__key", c = ident(&cte)));
                 let v = format!("{}.__v", ident(&cte));

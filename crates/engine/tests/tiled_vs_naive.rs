@@ -8,6 +8,7 @@ use arrow::datatypes::{DataType, Float64Type};
 use arrow::util::display::array_value_to_string;
 use chrono::NaiveDate;
 use daymark_engine::backfill::{build_range, key_ranges, range_query, tile_types, KeyRange};
+use daymark_engine::rollups::{plan_day, Level};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
 use daymark_engine::{inspect_sources, register_sources, snapshot_query};
 use daymark_spec::Knowledge;
@@ -188,6 +189,7 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
     // Days on which the two modes disagree: late rows are in the world and matter.
     let mut as_known: Vec<RecordBatch> = Vec::new();
     let mut modes_differ = 0;
+    let mut levels_used = std::collections::BTreeSet::new();
     let floats = tile_types(&ctx, &ls).await;
     for mode in [None, Some(Knowledge::EventTime)] {
         // The whole range as one set-based query (what a backfill runs).
@@ -230,7 +232,17 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
                 &format!("range {d} {mode:?}"),
             );
             if n % 5 == 0 || (day("2026-03-07")..=day("2026-03-09")).contains(d) || *d == last {
-                let tiled = run(&ctx, &tiled_snapshot_query(&pipeline, &ls, *d, mode).sql).await;
+                // The daily build: the day's pieces (tiles at the window edges, week and
+                // month roll-ups between, built on first use).
+                let (_, plan) = plan_day(&ctx, &pipeline, &reports, &ls, &out, *d, mode, false)
+                    .await
+                    .unwrap();
+                for p in plan.sources.values() {
+                    for s in &p.spans {
+                        levels_used.insert((s.level, mode.is_none()));
+                    }
+                }
+                let tiled = run(&ctx, &tiled_snapshot_query(&pipeline, &ls, &plan, mode).sql).await;
                 assert_same(&naive, &tiled, &format!("{d} {mode:?}"));
             }
             population += naive.num_rows();
@@ -241,23 +253,108 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
             }
         }
     }
+    // Weeks and months were both used, in both modes.
+    for level in [Level::Week, Level::Month] {
+        for as_known in [false, true] {
+            assert!(
+                levels_used.contains(&(level, as_known)),
+                "{level:?} {as_known}: {levels_used:?}"
+            );
+        }
+    }
     assert!(population > 10_000, "{population}");
     assert!(modes_differ > 10, "{modes_differ}");
 
-    // The next daily build reads only the partition it has not seen.
-    let next = [day("2026-06-16")];
-    let stats = prepare(&ctx, &pipeline, &reports, &ls, &out, &next, None)
-        .await
-        .unwrap();
+    // The next daily build reads no raw partition (the backfill's tiles cover all it
+    // needs), and the one after reads only the partition it has not seen; both read a
+    // few dozen tile partitions and roll-ups, not one partition per day of their windows
+    // (91 days for plays, all history for subscriptions).
+    let (stats, _) = plan_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-06-16"),
+        None,
+        false,
+    )
+    .await
+    .unwrap();
+    for (source, s) in &stats {
+        assert_eq!(s.partitions_built, 0, "{source}");
+        assert_eq!(s.raw_files, 0, "{source}");
+    }
+    let (stats, plan) = plan_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-06-17"),
+        None,
+        false,
+    )
+    .await
+    .unwrap();
     for (source, s) in &stats {
         let files = reports[source].listing.days.get(&day("2026-06-17"));
         assert_eq!(s.partitions_built, files.is_some() as u64, "{source}");
         assert_eq!(s.raw_files as usize, files.map_or(0, Vec::len), "{source}");
+        // Under half of the 91 days of plays' longest window (subscriptions and support
+        // read all 138 days of history).
+        let touched = s.partitions_built + s.partitions_reused;
+        assert!(touched <= 45, "{source}: {touched} tile partitions");
+        assert!(s.rollups_reused > 0, "{source}: {s:?}");
     }
     assert_eq!(stats["plays"].partitions_built, 1, "plays lands every day");
-    assert!(stats.values().map(|s| s.partitions_reused).sum::<u64>() > 100);
+    // Whole months of plays between the window edges come from roll-ups.
+    let plays = &plan.sources["plays"];
+    assert!(
+        plays
+            .spans
+            .iter()
+            .any(|s| s.level == Level::Month && s.first == day("2026-04-01")),
+        "{plays:?}"
+    );
+    let naive = run(
+        &ctx,
+        &snapshot_query(&pipeline, day("2026-06-17"), None).sql,
+    )
+    .await;
+    let tiled = run(&ctx, &tiled_snapshot_query(&pipeline, &ls, &plan, None).sql).await;
+    assert_same(&naive, &tiled, "2026-06-17");
 }
 
+/// The daily build of `d`: plans its pieces (building what they need), then runs the
+/// query; returns the stats of the plan, whether plays came partly from a roll-up, and the
+/// snapshot.
+async fn daily(
+    ctx: &datafusion::prelude::SessionContext,
+    pipeline: &daymark_spec::Pipeline,
+    reports: &std::collections::BTreeMap<String, daymark_engine::sources::SourceReport>,
+    ls: &std::collections::BTreeMap<String, daymark_engine::tiles::TileLayout>,
+    out: &daymark_store::Location,
+    d: NaiveDate,
+    mode: Option<Knowledge>,
+) -> (
+    std::collections::BTreeMap<String, daymark_engine::tiles::TileStats>,
+    bool,
+    RecordBatch,
+) {
+    let (stats, plan) = plan_day(ctx, pipeline, reports, ls, out, d, mode, false)
+        .await
+        .unwrap();
+    let rolled = !plan.sources["plays"].spans.is_empty();
+    let rows = run(ctx, &tiled_snapshot_query(pipeline, ls, &plan, mode).sql).await;
+    (stats, rolled, rows)
+}
+
+/// A late file (new events of an old day that arrived after the daily runs that could have
+/// seen them) rebuilds only its raw partition's tile and the roll-up of its week, changes
+/// event-time snapshots only, and both modes still equal the naive path. Checked on
+/// 2026-05-15 (the late day is a day piece) and 2026-05-19 (it is inside the week
+/// 2026-05-04..10 that plays reads as a roll-up).
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_views() {
     let dir = tempfile::tempdir().unwrap();
@@ -268,24 +365,29 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     let pipeline = demo_pipeline(&world, &dir.path().join("out"));
     let out = daymark_store::resolve(&dir.path().join("out").display().to_string(), None).unwrap();
     let ls = layouts(&pipeline);
-    let snapshot = day("2026-05-15");
+    let (snapshot, later) = (day("2026-05-15"), day("2026-05-19"));
+    let (as_known_mode, event_mode) = (None, Some(Knowledge::EventTime));
 
     let reports = inspect_sources(&pipeline).await;
     let ctx = daymark_engine::session::session(&Default::default()).unwrap();
     register_sources(&ctx, &pipeline, &reports).await.unwrap();
-    prepare(&ctx, &pipeline, &reports, &ls, &out, &[snapshot], None)
-        .await
-        .unwrap();
-    let as_known = run(
+    let (_, rolled, as_known) = daily(
         &ctx,
-        &tiled_snapshot_query(&pipeline, &ls, snapshot, None).sql,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        snapshot,
+        as_known_mode,
     )
     .await;
-    let event_time = run(
-        &ctx,
-        &tiled_snapshot_query(&pipeline, &ls, snapshot, Some(Knowledge::EventTime)).sql,
-    )
-    .await;
+    assert!(!rolled, "05-15: every plays day is a day piece");
+    let (_, _, event_time) =
+        daily(&ctx, &pipeline, &reports, &ls, &out, snapshot, event_mode).await;
+    let (stats, rolled, later_before) =
+        daily(&ctx, &pipeline, &reports, &ls, &out, later, event_mode).await;
+    assert!(rolled, "05-19: plays reads the week of 05-04 as a roll-up");
+    assert!(stats["plays"].rollups_built >= 1, "{stats:?}");
 
     // Re-deliver a whole on-time file of 2026-05-10 as if it had arrived now (a late file
     // with new ids: new events of that day that the daily run on 05-15 could not have seen).
@@ -300,9 +402,16 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     let reports = inspect_sources(&pipeline).await;
     let ctx = daymark_engine::session::session(&Default::default()).unwrap();
     register_sources(&ctx, &pipeline, &reports).await.unwrap();
-    let stats = prepare(&ctx, &pipeline, &reports, &ls, &out, &[snapshot], None)
-        .await
-        .unwrap();
+    let (stats, _, as_known_after) = daily(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        snapshot,
+        as_known_mode,
+    )
+    .await;
     assert_eq!(
         stats["plays"].partitions_built, 1,
         "only the partition that changed"
@@ -311,16 +420,8 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
         stats["subscriptions"].partitions_built + stats["support"].partitions_built,
         0
     );
-    let as_known_after = run(
-        &ctx,
-        &tiled_snapshot_query(&pipeline, &ls, snapshot, None).sql,
-    )
-    .await;
-    let event_time_after = run(
-        &ctx,
-        &tiled_snapshot_query(&pipeline, &ls, snapshot, Some(Knowledge::EventTime)).sql,
-    )
-    .await;
+    let (_, _, event_time_after) =
+        daily(&ctx, &pipeline, &reports, &ls, &out, snapshot, event_mode).await;
     assert_same(
         &as_known,
         &as_known_after,
@@ -332,15 +433,26 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
         "event-time sees the late events"
     );
     // And both still equal the naive path.
-    assert_same(
-        &run(
-            &ctx,
-            &snapshot_query(&pipeline, snapshot, Some(Knowledge::EventTime)).sql,
-        )
-        .await,
-        &event_time_after,
-        "naive event-time",
-    );
+    for (d, mode, tiled) in [
+        (snapshot, event_mode, &event_time_after),
+        (snapshot, as_known_mode, &as_known_after),
+    ] {
+        let naive = run(&ctx, &snapshot_query(&pipeline, d, mode).sql).await;
+        assert_same(&naive, tiled, &format!("naive {d} {mode:?}"));
+    }
+    // The week holding the late day is rolled up again (its partition changed) and the
+    // later snapshot sees the late events, in both modes (they arrived before its cutoff).
+    let (stats, rolled, later_after) =
+        daily(&ctx, &pipeline, &reports, &ls, &out, later, event_mode).await;
+    assert!(rolled);
+    assert_eq!(stats["plays"].rollups_built, 1, "{stats:?}");
+    assert_ne!(format!("{later_before:?}"), format!("{later_after:?}"));
+    for mode in [event_mode, as_known_mode] {
+        let (_, rolled, tiled) = daily(&ctx, &pipeline, &reports, &ls, &out, later, mode).await;
+        assert!(rolled, "{mode:?}");
+        let naive = run(&ctx, &snapshot_query(&pipeline, later, mode).sql).await;
+        assert_same(&naive, &tiled, &format!("naive {later} {mode:?}"));
+    }
 }
 
 /// Copies a plays file with new event ids and arrival times on 2026-05-16 (UTC).

@@ -501,6 +501,7 @@ async fn build_days(
         entry.finished = chrono::Utc::now().to_rfc3339();
         entry
     };
+    let sources = &reports;
     let mut next = 0;
     while next < days.len() {
         if stop.load(Ordering::SeqCst) {
@@ -530,20 +531,31 @@ async fn build_days(
             reports.push(r.clone());
         };
         let result = if run.len() == 1 {
-            let query =
-                daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, run[0], opts.mode);
-            daymark_engine::build::build_day_checked(
-                &ctx,
-                pipeline,
-                out,
-                run[0],
-                opts.mode,
-                &query.sql,
-                Some(&layouts),
-                Some(&checks),
+            // One day reads its pieces: tiles at its windows' edges, roll-ups between.
+            match daymark_engine::rollups::plan_day(
+                &ctx, pipeline, sources, &layouts, out, run[0], opts.mode, false,
             )
             .await
-            .map(|r| on_day(&r))
+            {
+                Ok((_, day_plan)) => {
+                    let query = daymark_engine::tiles::tiled_snapshot_query(
+                        pipeline, &layouts, &day_plan, opts.mode,
+                    );
+                    daymark_engine::build::build_day_checked(
+                        &ctx,
+                        pipeline,
+                        out,
+                        run[0],
+                        opts.mode,
+                        &query.sql,
+                        Some((&layouts, &day_plan)),
+                        Some(&checks),
+                    )
+                    .await
+                    .map(|r| on_day(&r))
+                }
+                Err(e) => Err(e),
+            }
         } else {
             daymark_engine::backfill::build_range(
                 &ctx,

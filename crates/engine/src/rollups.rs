@@ -1,0 +1,930 @@
+//! Roll-ups: the tiles of whole weeks and calendar months, combined per key, so that a
+//! daily snapshot reads a few dozen pieces instead of one tile partition per day of its
+//! longest window.
+//!
+//! The days a snapshot D reads from a source (from its earliest window start, or the
+//! source's first partition for unbounded aggregates, to D-1) are cut into **pieces**:
+//! whole months, whole weeks (Monday to Sunday) and single days at the edges, with a cut at
+//! every window start so that no piece straddles one. A 365-day window is about 30 pieces,
+//! a 91-day one about 20: the cost of a daily build no longer grows with its longest
+//! window. Every piece has the same columns: `__key`, `__lo` (its first day) and the
+//! partials of every feature combined over the piece ([`columns`]); a feature keeps the
+//! pieces with `__lo` at or after its window start. Day pieces are combined from the tiles
+//! on the fly; week and month pieces are stored.
+//!
+//! A roll-up holds every tile row whose event day lies in its span, whatever its arrival
+//! day: an event-time snapshot may always use it, an as-known snapshot only when every row
+//! arrived before its cutoff (the roll-up records its latest arrival day), else the span is
+//! cut into weeks, then days. A roll-up is rebuilt when the raw files of the partitions it
+//! covers change (its days and one more each side: rows are filed by event day in UTC).
+//! Spans ending after D-2 are not rolled up: the partition after their last day still
+//! fills.
+
+use crate::build::{child, BuildError};
+use crate::sources::SourceReport;
+use crate::sql::{ident, literal, KnowledgeOverride};
+use crate::tiles::{TileLayout, TileStats};
+use chrono::{Datelike, Duration, NaiveDate, Weekday};
+use datafusion::prelude::SessionContext;
+use daymark_spec::hash::hash_value;
+use daymark_spec::{Aggregation, FeatureDef, Knowledge, Pipeline, Population};
+use daymark_store::object_store::path::Path as StorePath;
+use daymark_store::object_store::{ObjectStoreExt, PutPayload};
+use daymark_store::Location;
+use serde_json::json;
+use std::collections::{BTreeMap, BTreeSet};
+
+/// Version of the roll-up format; part of every roll-up folder's name.
+const ROLLUP_FORMAT: u32 = 1;
+
+/// How long a stored span is.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Level {
+    /// Monday to Sunday.
+    Week,
+    /// A calendar month.
+    Month,
+}
+
+impl Level {
+    fn letter(self) -> &'static str {
+        match self {
+            Level::Week => "w",
+            Level::Month => "m",
+        }
+    }
+    fn trunc(self) -> &'static str {
+        match self {
+            Level::Week => "week",
+            Level::Month => "month",
+        }
+    }
+}
+
+/// A stored span of days: a week or a month.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub struct Span {
+    /// Week or month.
+    pub level: Level,
+    /// Its first day (a Monday, or the first of a month).
+    pub first: NaiveDate,
+}
+
+impl Span {
+    /// Its last day.
+    pub fn last(&self) -> NaiveDate {
+        match self.level {
+            Level::Week => self.first + Duration::days(6),
+            Level::Month => {
+                let (y, m) = if self.first.month() == 12 {
+                    (self.first.year() + 1, 1)
+                } else {
+                    (self.first.year(), self.first.month() + 1)
+                };
+                NaiveDate::from_ymd_opt(y, m, 1).expect("a month start") - Duration::days(1)
+            }
+        }
+    }
+}
+
+/// The pieces one snapshot reads from one source.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Pieces {
+    /// Days combined from the tiles.
+    pub days: Vec<NaiveDate>,
+    /// Weeks and months read from roll-ups.
+    pub spans: Vec<Span>,
+}
+
+/// What snapshot `day` reads: its pieces, per source with tiles.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct DayPlan {
+    /// The snapshot day.
+    pub day: NaiveDate,
+    /// Pieces per source.
+    pub sources: BTreeMap<String, Pieces>,
+}
+
+/// Folder of the roll-ups of `level` (`tiles/<source>/<hash>-r<columns>-<w|m>/`).
+pub fn dir(layout: &TileLayout, pipeline: &Pipeline, out: &Location, level: Level) -> StorePath {
+    let cols = hash_value(&json!([ROLLUP_FORMAT, columns(pipeline, layout)]));
+    child(
+        &out.prefix,
+        &[
+            "tiles",
+            &layout.source,
+            &format!("{}-r{}-{}", layout.hash, &cols[..8], level.letter()),
+        ],
+    )
+}
+
+fn distinct_dir(layout: &TileLayout, out: &Location, feature: usize, level: Level) -> StorePath {
+    child(
+        &out.prefix,
+        &[
+            "tiles",
+            &layout.source,
+            &format!(
+                "{}-d{feature}-r{ROLLUP_FORMAT}-{}",
+                layout.hash,
+                level.letter()
+            ),
+        ],
+    )
+}
+
+fn table(layout: &TileLayout, level: Level) -> String {
+    format!("{}__r{}", layout.source, level.letter())
+}
+
+fn distinct_table(layout: &TileLayout, feature: usize, level: Level) -> String {
+    format!("{}__d{feature}__r{}", layout.source, level.letter())
+}
+
+/// The partial columns of a piece, as (name, aggregate over tile rows): what the tiled
+/// snapshot query combines. Rows of a piece are grouped by key, so the columns that tiles
+/// keep per (key, event day, arrival day) are combined once more: counts and sums add up,
+/// extremes and first/last values keep theirs, active days become a count of distinct
+/// event days, days since first/last the earliest/latest event day.
+pub fn columns(pipeline: &Pipeline, layout: &TileLayout) -> Vec<(String, String)> {
+    let source = &pipeline.sources[&layout.source];
+    let has_arrival = source.spec.arrival_time.is_some();
+    let mut cols = vec![
+        ("__rows".to_string(), "SUM(__rows)".to_string()),
+        ("__ahead".to_string(), "SUM(__ahead)".to_string()),
+        ("__mev".to_string(), "MAX(__mev)".to_string()),
+    ];
+    if has_arrival {
+        cols.push(("__mar".to_string(), "MAX(__mar)".to_string()));
+    }
+    match &pipeline.population {
+        Population::State(s) if s.source == layout.source => {
+            let order = if has_arrival {
+                "__pt, __pa, __ps"
+            } else {
+                "__pt, __ps"
+            };
+            cols.push(("__ps".into(), format!("last_value(__ps ORDER BY {order})")));
+            cols.push(("__pt".into(), format!("last_value(__pt ORDER BY {order})")));
+            if has_arrival {
+                cols.push(("__pa".into(), format!("last_value(__pa ORDER BY {order})")));
+            }
+        }
+        Population::RecentActivity(r) if r.source == layout.source => {
+            cols.push(("__pc".into(), "SUM(__pc)".into()));
+        }
+        _ => {}
+    }
+    for (i, f) in pipeline.features.iter().enumerate() {
+        let FeatureDef::Aggregate { source, agg, .. } = &f.def else {
+            continue;
+        };
+        if *source != layout.source || *agg == Aggregation::CountDistinct {
+            continue;
+        }
+        let rows = format!(" FILTER (WHERE __c{i} > 0)");
+        cols.push((format!("__c{i}"), format!("SUM(__c{i})")));
+        match agg {
+            Aggregation::Sum | Aggregation::Mean => {
+                cols.push((format!("__s{i}"), format!("SUM(__s{i})")));
+                cols.push((format!("__n{i}"), format!("SUM(__n{i})")));
+            }
+            Aggregation::Min => cols.push((format!("__m{i}"), format!("MIN(__m{i})"))),
+            Aggregation::Max => cols.push((format!("__m{i}"), format!("MAX(__m{i})"))),
+            Aggregation::First | Aggregation::Last => {
+                let func = if *agg == Aggregation::First {
+                    "first_value"
+                } else {
+                    "last_value"
+                };
+                let order = if has_arrival {
+                    format!("__vt{i}, __va{i}, __v{i}")
+                } else {
+                    format!("__vt{i}, __v{i}")
+                };
+                let mut names = vec![format!("__v{i}"), format!("__vt{i}")];
+                if has_arrival {
+                    names.push(format!("__va{i}"));
+                }
+                for n in names {
+                    cols.push((n.clone(), format!("{func}({n} ORDER BY {order}){rows}")));
+                }
+            }
+            Aggregation::ActiveDays => {
+                cols.push((format!("__ad{i}"), format!("COUNT(DISTINCT __t){rows}")))
+            }
+            Aggregation::DaysSinceFirst => {
+                cols.push((format!("__tf{i}"), format!("MIN(__t){rows}")))
+            }
+            Aggregation::DaysSinceLast => {
+                cols.push((format!("__tl{i}"), format!("MAX(__t){rows}")))
+            }
+            Aggregation::Count | Aggregation::CountDistinct => {}
+        }
+    }
+    cols
+}
+
+/// The window starts of the features (and population) reading `source` for snapshot
+/// `day`, and whether one of them looks back without bound.
+fn window_starts(pipeline: &Pipeline, source: &str, day: NaiveDate) -> (BTreeSet<NaiveDate>, bool) {
+    let mut starts = BTreeSet::new();
+    let mut unbounded = false;
+    let mut add = |days: Option<u32>| match days {
+        Some(n) => {
+            starts.insert(day - Duration::days(n as i64));
+        }
+        None => unbounded = true,
+    };
+    match &pipeline.population {
+        Population::State(s) if s.source == source => add(None),
+        Population::RecentActivity(r) if r.source == source => add(r.within.days()),
+        _ => {}
+    }
+    for f in &pipeline.features {
+        if let FeatureDef::Aggregate {
+            source: s,
+            agg,
+            window,
+            ..
+        } = &f.def
+        {
+            if s == source {
+                add(if agg.is_unbounded() {
+                    None
+                } else {
+                    window.days()
+                });
+            }
+        }
+    }
+    (starts, unbounded)
+}
+
+/// Cuts the days `lo..=last` into pieces, with a cut at every day of `starts`: months and
+/// weeks ending on or before `stable` that `usable` accepts, days elsewhere.
+fn cut(
+    starts: &BTreeSet<NaiveDate>,
+    lo: NaiveDate,
+    last: NaiveDate,
+    stable: NaiveDate,
+    usable: &dyn Fn(Span) -> bool,
+) -> Pieces {
+    let mut pieces = Pieces::default();
+    let mut bounds: Vec<NaiveDate> = starts
+        .iter()
+        .copied()
+        .filter(|s| *s > lo && *s <= last)
+        .collect();
+    bounds.push(last + Duration::days(1));
+    let mut p = lo;
+    for end in bounds {
+        let limit = (end - Duration::days(1)).min(stable);
+        while p < end {
+            let month = Span {
+                level: Level::Month,
+                first: p,
+            };
+            let week = Span {
+                level: Level::Week,
+                first: p,
+            };
+            // A week running into a month that could be read whole would hide that month.
+            let next = Span {
+                level: Level::Month,
+                first: month_start(p).last() + Duration::days(1),
+            };
+            let hides_month = week.last() >= next.first && next.last() <= limit && usable(next);
+            let span = if p.day() == 1 && month.last() <= limit && usable(month) {
+                Some(month)
+            } else if p.weekday() == Weekday::Mon
+                && week.last() <= limit
+                && !hides_month
+                && usable(week)
+            {
+                Some(week)
+            } else {
+                None
+            };
+            match span {
+                Some(s) => {
+                    pieces.spans.push(s);
+                    p = s.last() + Duration::days(1);
+                }
+                None => {
+                    pieces.days.push(p);
+                    p += Duration::days(1);
+                }
+            }
+        }
+    }
+    pieces
+}
+
+/// The month `day` falls in.
+fn month_start(day: NaiveDate) -> Span {
+    Span {
+        level: Level::Month,
+        first: NaiveDate::from_ymd_opt(day.year(), day.month(), 1).expect("a month start"),
+    }
+}
+
+/// A stored roll-up that is still current: the latest arrival day of its rows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+struct Stored {
+    max_arrival: Option<NaiveDate>,
+}
+
+fn marker_path(dir: &StorePath, span: Span) -> StorePath {
+    child(dir, &[&format!("dt={}", span.first), "_inputs.json"])
+}
+
+/// What a span's roll-up depends on: the raw files of the partitions it covers.
+fn span_inputs(report: &SourceReport, span: Span) -> String {
+    let files: Vec<serde_json::Value> = report
+        .listing
+        .days
+        .range(span.first - Duration::days(1)..=span.last() + Duration::days(1))
+        .map(|(d, files)| json!([d.to_string(), crate::tiles::fingerprint(files)]))
+        .collect();
+    hash_value(&json!([ROLLUP_FORMAT, files]))
+}
+
+/// The partitions a span's roll-up reads.
+fn span_partitions(report: &SourceReport, span: Span) -> impl Iterator<Item = NaiveDate> + '_ {
+    report
+        .listing
+        .days
+        .range(span.first - Duration::days(1)..=span.last() + Duration::days(1))
+        .map(|(d, _)| *d)
+}
+
+/// Reads the stored markers of `spans`; returns those still current.
+async fn stored(
+    out: &Location,
+    dir: &StorePath,
+    report: &SourceReport,
+    spans: &[Span],
+) -> BTreeMap<Span, Stored> {
+    let mut found = BTreeMap::new();
+    for span in spans {
+        let Ok(got) = out.store.get(&marker_path(dir, *span)).await else {
+            continue;
+        };
+        let Ok(bytes) = got.bytes().await else {
+            continue;
+        };
+        let Ok(v) = serde_json::from_slice::<serde_json::Value>(&bytes) else {
+            continue;
+        };
+        if v["inputs"].as_str() != Some(&span_inputs(report, *span)) {
+            continue;
+        }
+        let max_arrival = v["max_arrival"].as_str().and_then(|s| s.parse().ok());
+        found.insert(*span, Stored { max_arrival });
+    }
+    found
+}
+
+/// The day of the span (of `level`) that `expr` (a date) falls in, as SQL.
+fn span_of(level: Level, expr: &str) -> String {
+    format!(
+        "CAST(date_trunc('{}', CAST({expr} AS TIMESTAMP)) AS DATE)",
+        level.trunc()
+    )
+}
+
+fn date(d: NaiveDate) -> String {
+    format!("CAST({} AS DATE)", literal(&d.to_string()))
+}
+
+fn in_list<T: ToString>(items: impl IntoIterator<Item = T>) -> String {
+    items
+        .into_iter()
+        .map(|d| literal(&d.to_string()))
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// Builds the roll-ups of `spans` (all of one level) from the tiles (which must be current
+/// and registered), with their distinct-value roll-ups, then writes their markers.
+#[allow(clippy::too_many_arguments)]
+async fn build(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    report: &SourceReport,
+    layout: &TileLayout,
+    out: &Location,
+    level: Level,
+    spans: &[Span],
+) -> Result<BTreeMap<Span, Stored>, BuildError> {
+    let first_day = spans[0].first;
+    let engine = |source| BuildError::Engine {
+        day: first_day,
+        source,
+    };
+    let parts: BTreeSet<NaiveDate> = spans
+        .iter()
+        .flat_map(|s| span_partitions(report, *s))
+        .collect();
+    let firsts: Vec<NaiveDate> = spans.iter().map(|s| s.first).collect();
+    // Tile rows of the partitions the spans cover whose event day lies in one of them.
+    let rows =
+        |table: &str| {
+            format!(
+            "SELECT * FROM (SELECT *, {} AS __part FROM {} WHERE dt IN ({})) WHERE __part IN ({})",
+            span_of(level, "__t"),
+            ident(table),
+            in_list(&parts),
+            firsts.iter().map(|d| date(*d)).collect::<Vec<_>>().join(", ")
+        )
+        };
+    let cols: Vec<String> = columns(pipeline, layout)
+        .into_iter()
+        .map(|(name, agg)| format!("{agg} AS {name}"))
+        .collect();
+    let sql = format!(
+        "SELECT __part, __key, __part AS __lo, {} FROM ({}) GROUP BY __part, __key ORDER BY __part",
+        cols.join(", "),
+        rows(&layout.table())
+    );
+    crate::tiles::write_split(ctx, &sql, out, &dir(layout, pipeline, out, level), &firsts).await?;
+    for (i, _, _) in &layout.distinct {
+        let sql = format!(
+            "SELECT DISTINCT __part, __key, __part AS __lo, __v FROM ({}) ORDER BY __part",
+            rows(&layout.distinct_table(*i))
+        );
+        crate::tiles::write_split(
+            ctx,
+            &sql,
+            out,
+            &distinct_dir(layout, out, *i, level),
+            &firsts,
+        )
+        .await?;
+    }
+    // The latest arrival day of each span's rows decides which as-known snapshots may use it.
+    let sql = format!(
+        "SELECT CAST(__part AS VARCHAR), CAST(MAX(__a) AS VARCHAR) FROM ({}) GROUP BY __part",
+        rows(&layout.table())
+    );
+    let batches = crate::tiles::collect(ctx, &sql, first_day).await?;
+    let mut latest: BTreeMap<NaiveDate, NaiveDate> = BTreeMap::new();
+    for b in &batches {
+        use datafusion::arrow::array::{Array, AsArray};
+        use datafusion::arrow::datatypes::DataType;
+        let text = |i: usize| {
+            datafusion::arrow::compute::cast(b.column(i), &DataType::Utf8)
+                .map_err(|e| engine(e.into()))
+        };
+        let (p, a) = (text(0)?, text(1)?);
+        let (p, a) = (p.as_string::<i32>(), a.as_string::<i32>());
+        for r in (0..b.num_rows()).filter(|r| !p.is_null(*r) && !a.is_null(*r)) {
+            if let (Ok(p), Ok(a)) = (p.value(r).parse(), a.value(r).parse()) {
+                latest.insert(p, a);
+            }
+        }
+    }
+    let dir = dir(layout, pipeline, out, level);
+    let mut built = BTreeMap::new();
+    for span in spans {
+        let max_arrival = latest.get(&span.first).copied();
+        let marker = json!({
+            "inputs": span_inputs(report, *span),
+            "max_arrival": max_arrival.map(|d| d.to_string()),
+        });
+        let path = marker_path(&dir, *span);
+        out.store
+            .put(
+                &path,
+                PutPayload::from(serde_json::to_vec(&marker).unwrap_or_default()),
+            )
+            .await
+            .map_err(|e| BuildError::Write {
+                day: span.first,
+                path: path.to_string(),
+                reason: e.to_string(),
+            })?;
+        built.insert(*span, Stored { max_arrival });
+    }
+    Ok(built)
+}
+
+/// Registers the tile tables of `layout` (main and distinct-value) for the queries that
+/// follow.
+async fn register_day_tiles(
+    ctx: &SessionContext,
+    out: &Location,
+    layout: &TileLayout,
+    day: NaiveDate,
+) -> Result<(), BuildError> {
+    let engine = |source| BuildError::Engine { day, source };
+    crate::tiles::register_tiles(ctx, out, &layout.dir(out), &layout.table())
+        .await
+        .map_err(engine)?;
+    for (i, _, _) in &layout.distinct {
+        crate::tiles::register_tiles(
+            ctx,
+            out,
+            &layout.distinct_dir(out, *i),
+            &layout.distinct_table(*i),
+        )
+        .await
+        .map_err(engine)?;
+    }
+    Ok(())
+}
+
+/// Plans snapshot `day`: cuts the days each source's windows need into pieces, builds the
+/// roll-ups the plan uses that are missing or stale and the tiles its pieces read (each raw
+/// partition at most once), and registers them. With `all_months`, every complete month of
+/// each source's partitions that ends by D-2 is rolled up too, used or not (what a backfill
+/// leaves for the daily builds after it, whatever their windows). Returns what it cost,
+/// per source, with the rows ignored for a null key or counted for an event time after
+/// their arrival among the rows the pieces cover.
+#[allow(clippy::too_many_arguments)]
+pub async fn plan_day(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    reports: &BTreeMap<String, SourceReport>,
+    layouts: &BTreeMap<String, TileLayout>,
+    out: &Location,
+    day: NaiveDate,
+    mode: KnowledgeOverride,
+    all_months: bool,
+) -> Result<(BTreeMap<String, TileStats>, DayPlan), BuildError> {
+    let naive = crate::sql::snapshot_query(pipeline, day, mode);
+    let last = day - Duration::days(1);
+    let stable = day - Duration::days(2);
+    let engine = |source| BuildError::Engine { day, source };
+    let mut plan = DayPlan {
+        day,
+        sources: BTreeMap::new(),
+    };
+    let mut all_stats = BTreeMap::new();
+    for (name, layout) in layouts {
+        let Some(read) = naive.reads.get(name) else {
+            continue;
+        };
+        let report = &reports[name];
+        let mut stats = TileStats::default();
+        let Some(first_partition) = report.listing.days.keys().next().copied() else {
+            plan.sources.insert(name.clone(), Pieces::default());
+            all_stats.insert(name.clone(), stats);
+            continue;
+        };
+        // Rows of a partition have event days from the day before it to the day after.
+        let floor = first_partition - Duration::days(1);
+        let (starts, unbounded) = window_starts(pipeline, name, day);
+        let lo = match starts.first() {
+            Some(s) if !unbounded => (*s).max(floor),
+            _ => floor,
+        };
+        // Spans known: None = stored but not usable by this snapshot.
+        let mut known: BTreeMap<Span, Option<Stored>> = BTreeMap::new();
+        let mut checked: BTreeSet<NaiveDate> = BTreeSet::new();
+        let mut first_round = true;
+        let pieces = loop {
+            let usable = |s: Span| match known.get(&s) {
+                None => true,
+                Some(None) => false,
+                Some(Some(_)) => true,
+            };
+            let pieces = if lo <= last {
+                cut(&starts, lo, last, stable, &usable)
+            } else {
+                Pieces::default()
+            };
+            let mut wanted: BTreeSet<Span> = pieces
+                .spans
+                .iter()
+                .filter(|s| !known.contains_key(s))
+                .copied()
+                .collect();
+            if first_round && all_months {
+                let mut m = month_start(floor).first;
+                while m <= stable {
+                    let span = Span {
+                        level: Level::Month,
+                        first: m,
+                    };
+                    if m >= floor && span.last() <= stable && !known.contains_key(&span) {
+                        wanted.insert(span);
+                    }
+                    m = span.last() + Duration::days(1);
+                }
+            }
+            first_round = false;
+            if wanted.is_empty() {
+                break pieces;
+            }
+            for level in [Level::Month, Level::Week] {
+                let spans: Vec<Span> = wanted
+                    .iter()
+                    .filter(|s| s.level == level)
+                    .copied()
+                    .collect();
+                if spans.is_empty() {
+                    continue;
+                }
+                let folder = dir(layout, pipeline, out, level);
+                let current = stored(out, &folder, report, &spans).await;
+                stats.rollups_reused += current.len() as u64;
+                let stale: Vec<Span> = spans
+                    .iter()
+                    .filter(|s| !current.contains_key(s))
+                    .copied()
+                    .collect();
+                let mut found = current;
+                if !stale.is_empty() {
+                    let parts: BTreeSet<NaiveDate> = stale
+                        .iter()
+                        .flat_map(|s| span_partitions(report, *s))
+                        .filter(|d| !checked.contains(d))
+                        .collect();
+                    let s = crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts)
+                        .await?;
+                    stats.add(&s);
+                    checked.extend(parts);
+                    register_day_tiles(ctx, out, layout, day).await?;
+                    let built = build(ctx, pipeline, report, layout, out, level, &stale).await?;
+                    stats.rollups_built += built.len() as u64;
+                    found.extend(built);
+                }
+                for span in spans {
+                    // An as-known snapshot may use a span only if all its rows had arrived.
+                    let ok = found.get(&span).filter(|st| {
+                        read.knowledge == Knowledge::EventTime
+                            || st.max_arrival.is_none_or(|a| a <= last)
+                    });
+                    known.insert(span, ok.copied());
+                }
+            }
+        };
+        // Tiles of the partitions the day pieces read.
+        let parts: BTreeSet<NaiveDate> = pieces
+            .days
+            .iter()
+            .flat_map(|d| {
+                report
+                    .listing
+                    .days
+                    .range(*d - Duration::days(1)..=*d + Duration::days(1))
+                    .map(|(p, _)| *p)
+            })
+            .filter(|d| !checked.contains(d))
+            .collect();
+        if !parts.is_empty() {
+            let s = crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
+            stats.add(&s);
+        }
+        // Registered again after the last tiles were written (the counts below read them).
+        register_day_tiles(ctx, out, layout, day).await?;
+        for level in [Level::Month, Level::Week] {
+            if !pieces.spans.iter().any(|s| s.level == level) {
+                continue;
+            }
+            crate::tiles::register_tiles(
+                ctx,
+                out,
+                &dir(layout, pipeline, out, level),
+                &table(layout, level),
+            )
+            .await
+            .map_err(engine)?;
+            for (i, _, _) in &layout.distinct {
+                crate::tiles::register_tiles(
+                    ctx,
+                    out,
+                    &distinct_dir(layout, out, *i, level),
+                    &distinct_table(layout, *i, level),
+                )
+                .await
+                .map_err(engine)?;
+            }
+        }
+        // Rows ignored (null key) or suspicious (clock skew) in the partitions the day
+        // depends on, whatever their event day: a row stamped years ahead sits in no
+        // window but is still reported. Only the count columns of the tiles are read.
+        let rows = format!(
+            "SELECT __key, __rows, __ahead FROM {} WHERE {}",
+            ident(&layout.table()),
+            crate::tiles::partitions_between(read.first_day, day).join(" AND ")
+        );
+        (stats.null_key_rows, stats.event_after_arrival_rows) =
+            crate::tiles::ignored_rows(ctx, &rows, day).await?;
+        plan.sources.insert(name.clone(), pieces);
+        all_stats.insert(name.clone(), stats);
+    }
+    Ok((all_stats, plan))
+}
+
+/// The partitions day pieces read and the SQL conditions selecting their tile rows.
+fn day_conditions(pieces: &Pieces, day: NaiveDate, knowledge: Knowledge) -> Vec<String> {
+    let partitions: BTreeSet<NaiveDate> = pieces
+        .days
+        .iter()
+        .flat_map(|d| [*d - Duration::days(1), *d, *d + Duration::days(1)])
+        .collect();
+    let mut conds = if pieces.days.is_empty() {
+        vec!["FALSE".to_string()]
+    } else {
+        vec![
+            format!("dt IN ({})", in_list(&partitions)),
+            format!(
+                "__t IN ({})",
+                pieces
+                    .days
+                    .iter()
+                    .map(|d| date(*d))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        ]
+    };
+    if knowledge == Knowledge::AsKnown {
+        conds.push(format!("__a <= {}", date(day - Duration::days(1))));
+    }
+    conds
+}
+
+fn spans_of(pieces: &Pieces, level: Level) -> Vec<NaiveDate> {
+    pieces
+        .spans
+        .iter()
+        .filter(|s| s.level == level)
+        .map(|s| s.first)
+        .collect()
+}
+
+/// The rows of one source's pieces for snapshot `day`: `__key`, `__lo` (the piece's first
+/// day), then the [`columns`]. Only rows with a key unless `null_keys`.
+pub fn pieces_sql(
+    pipeline: &Pipeline,
+    layout: &TileLayout,
+    pieces: &Pieces,
+    day: NaiveDate,
+    knowledge: Knowledge,
+    null_keys: bool,
+) -> String {
+    let cols = columns(pipeline, layout);
+    let keyed = if null_keys {
+        "TRUE"
+    } else {
+        "__key IS NOT NULL"
+    };
+    let aggs: Vec<String> = cols.iter().map(|(n, a)| format!("{a} AS {n}")).collect();
+    let names: Vec<&str> = cols.iter().map(|(n, _)| n.as_str()).collect();
+    let mut parts = Vec::new();
+    if !pieces.days.is_empty() || pieces.spans.is_empty() {
+        let mut conds = vec![keyed.to_string()];
+        conds.extend(day_conditions(pieces, day, knowledge));
+        parts.push(format!(
+            "SELECT __key, __t AS __lo, {} FROM {} WHERE {} GROUP BY __key, __t",
+            aggs.join(", "),
+            ident(&layout.table()),
+            conds.join(" AND ")
+        ));
+    }
+    for level in [Level::Month, Level::Week] {
+        let firsts = spans_of(pieces, level);
+        if !firsts.is_empty() {
+            parts.push(format!(
+                "SELECT __key, __lo, {} FROM {} WHERE {keyed} AND dt IN ({})",
+                names.join(", "),
+                ident(&table(layout, level)),
+                in_list(&firsts)
+            ));
+        }
+    }
+    parts.join(" UNION ALL ")
+}
+
+/// The distinct values of feature `feature` in one source's pieces: `__key`, `__lo`,
+/// `__v` (a value may repeat across pieces).
+pub fn distinct_pieces_sql(
+    layout: &TileLayout,
+    feature: usize,
+    pieces: &Pieces,
+    day: NaiveDate,
+    knowledge: Knowledge,
+) -> String {
+    let mut parts = Vec::new();
+    if !pieces.days.is_empty() || pieces.spans.is_empty() {
+        parts.push(format!(
+            "SELECT __key, __t AS __lo, __v FROM {} WHERE {}",
+            ident(&layout.distinct_table(feature)),
+            day_conditions(pieces, day, knowledge).join(" AND ")
+        ));
+    }
+    for level in [Level::Month, Level::Week] {
+        let firsts = spans_of(pieces, level);
+        if !firsts.is_empty() {
+            parts.push(format!(
+                "SELECT __key, __lo, __v FROM {} WHERE dt IN ({})",
+                ident(&distinct_table(layout, feature, level)),
+                in_list(&firsts)
+            ));
+        }
+    }
+    parts.join(" UNION ALL ")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn d(s: &str) -> NaiveDate {
+        s.parse().unwrap()
+    }
+
+    fn week(s: &str) -> Span {
+        Span {
+            level: Level::Week,
+            first: d(s),
+        }
+    }
+
+    fn month(s: &str) -> Span {
+        Span {
+            level: Level::Month,
+            first: d(s),
+        }
+    }
+
+    fn days(from: &str, to: &str) -> Vec<NaiveDate> {
+        d(from).iter_days().take_while(|x| *x <= d(to)).collect()
+    }
+
+    #[test]
+    fn spans_end_on_sunday_and_on_the_last_of_the_month() {
+        // 2026-06-01 is a Monday (calendar); February 2028 has 29 days (leap year).
+        assert_eq!(week("2026-06-01").last(), d("2026-06-07"));
+        assert_eq!(month("2028-02-01").last(), d("2028-02-29"));
+        assert_eq!(month("2026-12-01").last(), d("2026-12-31"));
+    }
+
+    /// Snapshot 2026-06-17 with 7, 28 and 91-day windows (starts 06-10, 05-20, 03-18),
+    /// worked by hand: cuts at each start, months and weeks (Mondays: 03-23, 03-30, 05-04,
+    /// 05-11, 05-18, 05-25, 06-01, 06-08, 06-15) where they fit before the next cut and end
+    /// by D-2 = 06-15; the week of 03-30 would hide April, so 03-30 and 03-31 are days.
+    #[test]
+    fn windows_are_cut_into_months_weeks_and_days() {
+        let starts: BTreeSet<NaiveDate> = [d("2026-06-10"), d("2026-05-20"), d("2026-03-18")]
+            .into_iter()
+            .collect();
+        let p = cut(
+            &starts,
+            d("2026-03-18"),
+            d("2026-06-16"),
+            d("2026-06-15"),
+            &|_| true,
+        );
+        assert_eq!(
+            p.spans,
+            vec![
+                week("2026-03-23"),
+                month("2026-04-01"),
+                week("2026-05-04"),
+                week("2026-05-11"),
+                week("2026-05-25"),
+                week("2026-06-01"),
+            ]
+        );
+        let mut expected = days("2026-03-18", "2026-03-22");
+        expected.extend(days("2026-03-30", "2026-03-31"));
+        expected.extend(days("2026-05-01", "2026-05-03"));
+        expected.extend(days("2026-05-18", "2026-05-24"));
+        expected.extend(days("2026-06-08", "2026-06-16"));
+        assert_eq!(p.days, expected);
+        // Every day from the first start to D-1 is in exactly one piece.
+        let mut covered: Vec<NaiveDate> = p.days.clone();
+        for s in &p.spans {
+            covered.extend(days(&s.first.to_string(), &s.last().to_string()));
+        }
+        covered.sort();
+        assert_eq!(covered, days("2026-03-18", "2026-06-16"));
+    }
+
+    #[test]
+    fn an_unusable_month_falls_back_to_weeks_then_days() {
+        let starts = BTreeSet::new();
+        let no_april = |s: Span| s != month("2026-04-01") && s != week("2026-04-13");
+        let p = cut(
+            &starts,
+            d("2026-04-01"),
+            d("2026-04-30"),
+            d("2026-05-30"),
+            &no_april,
+        );
+        assert_eq!(
+            p.spans,
+            vec![week("2026-04-06"), week("2026-04-20")],
+            "April 2026 starts on a Wednesday"
+        );
+        let mut expected = days("2026-04-01", "2026-04-05");
+        expected.extend(days("2026-04-13", "2026-04-19"));
+        expected.extend(days("2026-04-27", "2026-04-30"));
+        assert_eq!(p.days, expected);
+    }
+}
