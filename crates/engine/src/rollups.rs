@@ -510,27 +510,33 @@ async fn build(
     Ok(built)
 }
 
-/// Registers the tile tables of `layout` (main and distinct-value) for the queries that
-/// follow.
-async fn register_day_tiles(
+/// Registers the tables of `layout` (main and distinct-value) for the queries that follow:
+/// its day tiles, or with `level` its roll-ups of that level.
+async fn register_tables(
     ctx: &SessionContext,
+    pipeline: &Pipeline,
     out: &Location,
     layout: &TileLayout,
+    level: Option<Level>,
     day: NaiveDate,
 ) -> Result<(), BuildError> {
-    let engine = |source| BuildError::Engine { day, source };
-    crate::tiles::register_tiles(ctx, out, &layout.dir(out), &layout.table())
-        .await
-        .map_err(engine)?;
+    let mut tables = vec![match level {
+        None => (layout.dir(out), layout.table()),
+        Some(l) => (dir(layout, pipeline, out, l), table(layout, l)),
+    }];
     for (i, _, _) in &layout.distinct {
-        crate::tiles::register_tiles(
-            ctx,
-            out,
-            &layout.distinct_dir(out, *i),
-            &layout.distinct_table(*i),
-        )
-        .await
-        .map_err(engine)?;
+        tables.push(match level {
+            None => (layout.distinct_dir(out, *i), layout.distinct_table(*i)),
+            Some(l) => (
+                distinct_dir(layout, out, *i, l),
+                distinct_table(layout, *i, l),
+            ),
+        });
+    }
+    for (folder, name) in tables {
+        crate::tiles::register_tiles(ctx, out, &folder, &name)
+            .await
+            .map_err(|source| BuildError::Engine { day, source })?;
     }
     Ok(())
 }
@@ -556,7 +562,6 @@ pub async fn plan_day(
     let naive = crate::sql::snapshot_query(pipeline, day, mode);
     let last = day - Duration::days(1);
     let stable = day - Duration::days(2);
-    let engine = |source| BuildError::Engine { day, source };
     let mut plan = DayPlan {
         day,
         sources: BTreeMap::new(),
@@ -646,7 +651,7 @@ pub async fn plan_day(
                         .await?;
                     stats.add(&s);
                     checked.extend(parts);
-                    register_day_tiles(ctx, out, layout, day).await?;
+                    register_tables(ctx, pipeline, out, layout, None, day).await?;
                     let built = build(ctx, pipeline, report, layout, out, level, &stale).await?;
                     stats.rollups_built += built.len() as u64;
                     found.extend(built);
@@ -679,28 +684,10 @@ pub async fn plan_day(
             stats.add(&s);
         }
         // Registered again after the last tiles were written (the counts below read them).
-        register_day_tiles(ctx, out, layout, day).await?;
+        register_tables(ctx, pipeline, out, layout, None, day).await?;
         for level in [Level::Month, Level::Week] {
-            if !pieces.spans.iter().any(|s| s.level == level) {
-                continue;
-            }
-            crate::tiles::register_tiles(
-                ctx,
-                out,
-                &dir(layout, pipeline, out, level),
-                &table(layout, level),
-            )
-            .await
-            .map_err(engine)?;
-            for (i, _, _) in &layout.distinct {
-                crate::tiles::register_tiles(
-                    ctx,
-                    out,
-                    &distinct_dir(layout, out, *i, level),
-                    &distinct_table(layout, *i, level),
-                )
-                .await
-                .map_err(engine)?;
+            if pieces.spans.iter().any(|s| s.level == level) {
+                register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
             }
         }
         // Rows ignored (null key) or suspicious (clock skew) in the partitions the day
