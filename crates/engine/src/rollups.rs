@@ -23,7 +23,7 @@
 use crate::build::{child, BuildError};
 use crate::sources::SourceReport;
 use crate::sql::{ident, literal, KnowledgeOverride};
-use crate::tiles::{TileLayout, TileStats};
+use crate::tiles::{Ignored, TileLayout, TileStats};
 use chrono::{Datelike, Duration, NaiveDate, Weekday};
 use datafusion::prelude::SessionContext;
 use daymark_spec::hash::hash_value;
@@ -94,6 +94,32 @@ pub struct Pieces {
     pub days: Vec<NaiveDate>,
     /// Weeks and months read from roll-ups.
     pub spans: Vec<Span>,
+    /// Sum columns (`__s<i>`) of the tiles that hold floating-point values. Pieces add
+    /// them up exactly ([`exact_sum`]), so the same tiles give the same bytes whatever
+    /// order parallel aggregation merges partial sums in (a rerun publishes an identical
+    /// file).
+    pub float_sums: BTreeSet<String>,
+}
+
+/// `SUM(column)` of a floating-point column, added exactly: each value is rounded to
+/// DECIMAL(38, 12) (as the set-based backfill carries float sums) and the total turned back
+/// into a double. `filter` is an aggregate filter (` FILTER (WHERE ...)`) or empty.
+pub fn exact_sum(column: &str, filter: &str) -> String {
+    format!("CAST(SUM(CAST({column} AS DECIMAL(38, 12))){filter} AS DOUBLE)")
+}
+
+/// The float sum columns of the day tiles of `layout` as registered in `ctx`.
+async fn float_sums(ctx: &SessionContext, layout: &TileLayout) -> BTreeSet<String> {
+    match ctx.table_provider(layout.table()).await {
+        Ok(t) => t
+            .schema()
+            .fields()
+            .iter()
+            .filter(|f| f.name().starts_with("__s") && f.data_type().is_floating())
+            .map(|f| f.name().clone())
+            .collect(),
+        Err(_) => BTreeSet::new(),
+    }
 }
 
 /// What snapshot `day` reads: its pieces, per source with tiles.
@@ -107,7 +133,12 @@ pub struct DayPlan {
 
 /// Folder of the roll-ups of `level` (`tiles/<source>/<hash>-r<columns>-<w|m>/`).
 pub fn dir(layout: &TileLayout, pipeline: &Pipeline, out: &Location, level: Level) -> StorePath {
-    let cols = hash_value(&json!([ROLLUP_FORMAT, columns(pipeline, layout)]));
+    // The hash names what the columns hold; whether float sums were added exactly does
+    // not change that.
+    let cols = hash_value(&json!([
+        ROLLUP_FORMAT,
+        columns(pipeline, layout, &BTreeSet::new())
+    ]));
     child(
         &out.prefix,
         &[
@@ -145,8 +176,13 @@ fn distinct_table(layout: &TileLayout, feature: usize, level: Level) -> String {
 /// snapshot query combines. Rows of a piece are grouped by key, so the columns that tiles
 /// keep per (key, event day, arrival day) are combined once more: counts and sums add up,
 /// extremes and first/last values keep theirs, active days become a count of distinct
-/// event days, days since first/last the earliest/latest event day.
-pub fn columns(pipeline: &Pipeline, layout: &TileLayout) -> Vec<(String, String)> {
+/// event days, days since first/last the earliest/latest event day. Sums named in
+/// `float_sums` are added exactly ([`exact_sum`]).
+pub fn columns(
+    pipeline: &Pipeline,
+    layout: &TileLayout,
+    float_sums: &BTreeSet<String>,
+) -> Vec<(String, String)> {
     let source = &pipeline.sources[&layout.source];
     let has_arrival = source.spec.arrival_time.is_some();
     let mut cols = vec![
@@ -186,7 +222,13 @@ pub fn columns(pipeline: &Pipeline, layout: &TileLayout) -> Vec<(String, String)
         cols.push((format!("__c{i}"), format!("SUM(__c{i})")));
         match agg {
             Aggregation::Sum | Aggregation::Mean => {
-                cols.push((format!("__s{i}"), format!("SUM(__s{i})")));
+                let sum = format!("__s{i}");
+                let agg = if float_sums.contains(&sum) {
+                    exact_sum(&sum, "")
+                } else {
+                    format!("SUM({sum})")
+                };
+                cols.push((sum, agg));
                 cols.push((format!("__n{i}"), format!("SUM(__n{i})")));
             }
             Aggregation::Min => cols.push((format!("__m{i}"), format!("MIN(__m{i})"))),
@@ -417,6 +459,7 @@ async fn build(
     out: &Location,
     level: Level,
     spans: &[Span],
+    float_sums: &BTreeSet<String>,
 ) -> Result<BTreeMap<Span, Stored>, BuildError> {
     let first_day = spans[0].first;
     let engine = |source| BuildError::Engine {
@@ -439,7 +482,7 @@ async fn build(
             firsts.iter().map(|d| date(*d)).collect::<Vec<_>>().join(", ")
         )
         };
-    let cols: Vec<String> = columns(pipeline, layout)
+    let cols: Vec<String> = columns(pipeline, layout, float_sums)
         .into_iter()
         .map(|(name, agg)| format!("{agg} AS {name}"))
         .collect();
@@ -587,7 +630,10 @@ pub async fn plan_day(
         };
         // Spans known: None = stored but not usable by this snapshot.
         let mut known: BTreeMap<Span, Option<Stored>> = BTreeMap::new();
-        let mut checked: BTreeSet<NaiveDate> = BTreeSet::new();
+        // Partitions whose tiles are known current, with their ignored rows.
+        let mut checked: BTreeMap<NaiveDate, Ignored> = BTreeMap::new();
+        // Whether the day tiles are registered since the last ones were written.
+        let mut registered = false;
         let mut first_round = true;
         let pieces = loop {
             let usable = |s: Span| match known.get(&s) {
@@ -645,14 +691,20 @@ pub async fn plan_day(
                     let parts: BTreeSet<NaiveDate> = stale
                         .iter()
                         .flat_map(|s| span_partitions(report, *s))
-                        .filter(|d| !checked.contains(d))
+                        .filter(|d| !checked.contains_key(d))
                         .collect();
-                    let s = crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts)
-                        .await?;
+                    let (s, counts) =
+                        crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts)
+                            .await?;
                     stats.add(&s);
-                    checked.extend(parts);
-                    register_tables(ctx, pipeline, out, layout, None, day).await?;
-                    let built = build(ctx, pipeline, report, layout, out, level, &stale).await?;
+                    checked.extend(counts);
+                    if s.partitions_built > 0 || !registered {
+                        register_tables(ctx, pipeline, out, layout, None, day).await?;
+                        registered = true;
+                    }
+                    let floats = float_sums(ctx, layout).await;
+                    let built =
+                        build(ctx, pipeline, report, layout, out, level, &stale, &floats).await?;
                     stats.rollups_built += built.len() as u64;
                     found.extend(built);
                 }
@@ -666,8 +718,11 @@ pub async fn plan_day(
                 }
             }
         };
-        // Tiles of the partitions the day pieces read.
-        let parts: BTreeSet<NaiveDate> = pieces
+        // Tiles of the partitions the day pieces read, then the markers of every other
+        // partition the day depends on: rows ignored (null key) or suspicious (clock skew)
+        // are reported whatever their event day (a row stamped years ahead sits in no
+        // window). Tiles only checked for their counts are not counted as reused.
+        let read_parts: BTreeSet<NaiveDate> = pieces
             .days
             .iter()
             .flat_map(|d| {
@@ -677,29 +732,45 @@ pub async fn plan_day(
                     .range(*d - Duration::days(1)..=*d + Duration::days(1))
                     .map(|(p, _)| *p)
             })
-            .filter(|d| !checked.contains(d))
+            .filter(|d| !checked.contains_key(d))
             .collect();
-        if !parts.is_empty() {
-            let s = crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
+        let counted_parts: BTreeSet<NaiveDate> = report
+            .listing
+            .days
+            .range(..=day)
+            .map(|(p, _)| *p)
+            .filter(|p| read.first_day.is_none_or(|f| *p >= f))
+            .filter(|d| !checked.contains_key(d) && !read_parts.contains(d))
+            .collect();
+        for (parts, tiles_read) in [(read_parts, true), (counted_parts, false)] {
+            if parts.is_empty() {
+                continue;
+            }
+            let (mut s, counts) =
+                crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
+            if !tiles_read {
+                s.partitions_reused = 0;
+            }
             stats.add(&s);
+            registered &= s.partitions_built == 0;
+            checked.extend(counts);
         }
-        // Registered again after the last tiles were written (the counts below read them).
-        register_tables(ctx, pipeline, out, layout, None, day).await?;
+        if !registered {
+            register_tables(ctx, pipeline, out, layout, None, day).await?;
+        }
+        let mut pieces = pieces;
+        pieces.float_sums = float_sums(ctx, layout).await;
         for level in [Level::Month, Level::Week] {
             if pieces.spans.iter().any(|s| s.level == level) {
                 register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
             }
         }
-        // Rows ignored (null key) or suspicious (clock skew) in the partitions the day
-        // depends on, whatever their event day: a row stamped years ahead sits in no
-        // window but is still reported. Only the count columns of the tiles are read.
-        let rows = format!(
-            "SELECT __key, __rows, __ahead FROM {} WHERE {}",
-            ident(&layout.table()),
-            crate::tiles::partitions_between(read.first_day, day).join(" AND ")
-        );
+        let mut ignored = Ignored::default();
+        for (_, n) in checked.range(read.first_day.unwrap_or(NaiveDate::MIN)..=day) {
+            ignored.add(n);
+        }
         (stats.null_key_rows, stats.event_after_arrival_rows) =
-            crate::tiles::ignored_rows(ctx, &rows, day).await?;
+            (ignored.null_key_rows, ignored.event_after_arrival_rows);
         plan.sources.insert(name.clone(), pieces);
         all_stats.insert(name.clone(), stats);
     }
@@ -754,7 +825,7 @@ pub fn pieces_sql(
     knowledge: Knowledge,
     null_keys: bool,
 ) -> String {
-    let cols = columns(pipeline, layout);
+    let cols = columns(pipeline, layout, &pieces.float_sums);
     let keyed = if null_keys {
         "TRUE"
     } else {

@@ -290,15 +290,17 @@ pub fn distinct_sql(
 /// writes the rows of each of `days` without that column to `dir/dt=D/part-0.parquet`,
 /// each through staging and rename. Days without rows get an empty file. On an error the
 /// file being written is dropped; files already published are whole (their fingerprints
-/// are not written yet, so they are rebuilt next time).
+/// are not written yet, so they are rebuilt next time). Returns, per day, the [`Ignored`]
+/// rows the written rows count (zero where the rows have no `__key`, `__rows`, `__ahead`).
 pub(crate) async fn write_split(
     ctx: &SessionContext,
     sql: &str,
     out: &Location,
     dir: &StorePath,
     days: &[NaiveDate],
-) -> Result<(), BuildError> {
-    use datafusion::arrow::array::AsArray;
+) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
+    use datafusion::arrow::array::{Array, AsArray};
+    use datafusion::arrow::datatypes::Int64Type;
     use futures::StreamExt;
     let first = days[0];
     let engine = |source| BuildError::Engine { day: first, source };
@@ -309,6 +311,9 @@ pub(crate) async fn write_split(
     let schema = Arc::new(full.project(&keep).map_err(|e| engine(e.into()))?);
     let path = |d: NaiveDate| child(dir, &[&format!("dt={d}"), "part-0.parquet"]);
     let mut pending: BTreeSet<NaiveDate> = days.iter().copied().collect();
+    let mut ignored: BTreeMap<NaiveDate, Ignored> =
+        days.iter().map(|d| (*d, Ignored::default())).collect();
+    let counted = ["__key", "__rows", "__ahead"].map(|c| schema.index_of(c).ok());
     let mut current: Option<crate::build::DayWriter> = None;
     let streamed: Result<(), BuildError> = async {
         while let Some(batch) = stream.next().await {
@@ -343,6 +348,21 @@ pub(crate) async fn write_split(
                         crate::build::tile_writer_properties(),
                     )?);
                 }
+                if let [Some(k), Some(r), Some(a)] = counted {
+                    let (key, rows, ahead) = (body.column(k), body.column(r), body.column(a));
+                    if let (Some(rows), Some(ahead)) = (
+                        rows.as_primitive_opt::<Int64Type>(),
+                        ahead.as_primitive_opt::<Int64Type>(),
+                    ) {
+                        let n = ignored.entry(day).or_default();
+                        for i in run.clone() {
+                            if key.is_null(i) {
+                                n.null_key_rows += rows.value(i) as u64;
+                            }
+                            n.event_after_arrival_rows += ahead.value(i) as u64;
+                        }
+                    }
+                }
                 if let Some(w) = current.as_mut() {
                     w.write(&body.slice(run.start, run.len())).await?;
                 }
@@ -371,7 +391,36 @@ pub(crate) async fn write_split(
         .finish(None)
         .await?;
     }
-    Ok(())
+    Ok(ignored)
+}
+
+/// Raw rows of a partition that no snapshot uses (a null key) or that look wrong (event
+/// time after arrival time beyond [`CLOCK_SKEW_TOLERANCE_SECS`]), among its de-duplicated
+/// rows. Counted while its tile is written and kept in the tile's marker, so a build
+/// reports them for every partition it depends on without reading the tiles again.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct Ignored {
+    /// Rows with a null key (left out of every snapshot).
+    pub null_key_rows: u64,
+    /// Rows whose event time is after their arrival time beyond the tolerance.
+    pub event_after_arrival_rows: u64,
+}
+
+impl Ignored {
+    /// Adds `other`'s counts.
+    pub fn add(&mut self, other: &Ignored) {
+        self.null_key_rows += other.null_key_rows;
+        self.event_after_arrival_rows += other.event_after_arrival_rows;
+    }
+}
+
+/// What a tile's marker (`_inputs.json`, written after the tile) keeps: the fingerprint of
+/// the raw files the tile was built from, and the rows they held that were ignored.
+#[derive(Debug, serde::Serialize, serde::Deserialize)]
+struct Marker {
+    inputs: serde_json::Value,
+    #[serde(flatten)]
+    ignored: Ignored,
 }
 
 /// What building tiles cost.
@@ -379,7 +428,9 @@ pub(crate) async fn write_split(
 pub struct TileStats {
     /// Raw partitions whose tiles were built (or rebuilt).
     pub partitions_built: u64,
-    /// Partitions whose stored tiles were still current.
+    /// Partitions whose stored tiles were still current and were read (a daily build also
+    /// checks the markers of the other partitions its windows cover, for their ignored-row
+    /// counts, without counting them here).
     pub partitions_reused: u64,
     /// Raw files read.
     pub raw_files: u64,
@@ -439,7 +490,14 @@ pub async fn prepare(
         let Some(set) = needed.get(source) else {
             continue;
         };
-        let mut s = ensure_tiles(ctx, pipeline, &reports[source], layout, out, set).await?;
+        let (mut s, ignored) =
+            ensure_tiles(ctx, pipeline, &reports[source], layout, out, set).await?;
+        let mut total = Ignored::default();
+        for n in ignored.values() {
+            total.add(n);
+        }
+        (s.null_key_rows, s.event_after_arrival_rows) =
+            (total.null_key_rows, total.event_after_arrival_rows);
         if set.is_empty() {
             stats.insert(source.clone(), s);
             continue;
@@ -456,17 +514,6 @@ pub async fn prepare(
         for (i, _, _) in &layout.distinct {
             register(layout.distinct_dir(out, *i), layout.distinct_table(*i)).await?;
         }
-        let (first, last) = (
-            set.first().expect("not empty"),
-            set.last().expect("not empty"),
-        );
-        let rows = format!(
-            "SELECT * FROM {} WHERE dt >= {} AND dt <= {}",
-            ident(&layout.table()),
-            literal(&first.to_string()),
-            literal(&last.to_string())
-        );
-        (s.null_key_rows, s.event_after_arrival_rows) = ignored_rows(ctx, &rows, days[0]).await?;
         stats.insert(source.clone(), s);
     }
     Ok(stats)
@@ -505,28 +552,6 @@ pub(crate) async fn collect(
         .map_err(engine)
 }
 
-/// Among tile (or piece) rows `rows` (a query with `__key`, `__rows`, `__ahead`): the raw
-/// rows ignored for a null key, and those whose event time is after their arrival.
-pub(crate) async fn ignored_rows(
-    ctx: &SessionContext,
-    rows: &str,
-    day: NaiveDate,
-) -> Result<(u64, u64), BuildError> {
-    use datafusion::arrow::array::AsArray;
-    use datafusion::arrow::datatypes::Int64Type;
-    let sql = format!(
-        "SELECT CAST(COALESCE(SUM(__rows) FILTER (WHERE __key IS NULL), 0) AS BIGINT), CAST(COALESCE(SUM(__ahead), 0) AS BIGINT) FROM ({rows})"
-    );
-    let batches = collect(ctx, &sql, day).await?;
-    Ok(match batches.first().filter(|b| b.num_rows() > 0) {
-        Some(b) => (
-            b.column(0).as_primitive::<Int64Type>().value(0) as u64,
-            b.column(1).as_primitive::<Int64Type>().value(0) as u64,
-        ),
-        None => (0, 0),
-    })
-}
-
 fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
     child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"])
 }
@@ -551,8 +576,21 @@ fn bytes_per_query(ctx: &SessionContext) -> u64 {
     }
 }
 
+/// How many tile markers are read at once (each is a small object; on a remote store the
+/// latency of one request dominates).
+const MARKER_READS: usize = 32;
+
+/// The marker of partition `day`'s tile, if there is one in the current format.
+async fn read_marker(layout: &TileLayout, out: &Location, day: NaiveDate) -> Option<Marker> {
+    let stored = out.store.get(&marker_path(layout, out, day)).await.ok()?;
+    let bytes = stored.bytes().await.ok()?;
+    serde_json::from_slice(&bytes).ok()
+}
+
 /// Builds the tiles of `source` for `days` that are missing or stale, many partitions per
-/// query.
+/// query. Returns what it cost and, for every one of `days` that has a raw partition, the
+/// rows it held that were ignored (from the marker of a current tile, or counted while
+/// building it).
 pub async fn ensure_tiles(
     ctx: &SessionContext,
     pipeline: &Pipeline,
@@ -560,30 +598,37 @@ pub async fn ensure_tiles(
     layout: &TileLayout,
     out: &Location,
     days: &BTreeSet<NaiveDate>,
-) -> Result<TileStats, BuildError> {
+) -> Result<(TileStats, BTreeMap<NaiveDate, Ignored>), BuildError> {
+    use futures::StreamExt;
     let source = &pipeline.sources[&layout.source];
     let mut stats = TileStats::default();
+    let mut ignored = BTreeMap::new();
+    let checks: Vec<(NaiveDate, &[DataFile], serde_json::Value, Option<Marker>)> =
+        futures::stream::iter(
+            days.iter()
+                .filter_map(|d| report.listing.days.get(d).map(|f| (*d, f.as_slice()))),
+        )
+        .map(|(day, files)| async move {
+            (
+                day,
+                files,
+                fingerprint(files),
+                read_marker(layout, out, day).await,
+            )
+        })
+        .buffered(MARKER_READS)
+        .collect()
+        .await;
     // (day, raw files, fingerprint) of every partition whose tile must be (re)built.
     let mut stale: Vec<(NaiveDate, &[DataFile], serde_json::Value)> = Vec::new();
-    for day in days {
-        let Some(files) = report.listing.days.get(day) else {
-            continue;
-        };
-        let inputs = fingerprint(files);
-        let marker = marker_path(layout, out, *day);
-        if let Ok(stored) = out.store.get(&marker).await {
-            if let Ok(bytes) = stored.bytes().await {
-                if serde_json::from_slice::<serde_json::Value>(&bytes)
-                    .ok()
-                    .as_ref()
-                    == Some(&inputs)
-                {
-                    stats.partitions_reused += 1;
-                    continue;
-                }
+    for (day, files, inputs, marker) in checks {
+        match marker {
+            Some(m) if m.inputs == inputs => {
+                stats.partitions_reused += 1;
+                ignored.insert(day, m.ignored);
             }
+            _ => stale.push((day, files, inputs)),
         }
-        stale.push((*day, files, inputs));
     }
     let mut batches: Vec<&[(NaiveDate, &[DataFile], serde_json::Value)]> = Vec::new();
     let budget = bytes_per_query(ctx);
@@ -603,7 +648,7 @@ pub async fn ensure_tiles(
     }
     for batch in batches {
         let batch_days: Vec<NaiveDate> = batch.iter().map(|(d, _, _)| *d).collect();
-        write_split(
+        let counted = write_split(
             ctx,
             &tile_sql(pipeline, source, layout, &batch_days),
             out,
@@ -622,26 +667,30 @@ pub async fn ensure_tiles(
             .await?;
         }
         for (day, files, inputs) in batch {
-            // The fingerprint is written last: a crash before it leaves the tile to be
-            // rebuilt.
-            let marker = marker_path(layout, out, *day);
+            // The marker is written last: a crash before it leaves the tile to be rebuilt.
+            let marker = Marker {
+                inputs: inputs.clone(),
+                ignored: counted.get(day).copied().unwrap_or_default(),
+            };
+            let path = marker_path(layout, out, *day);
             out.store
                 .put(
-                    &marker,
-                    PutPayload::from(serde_json::to_vec(inputs).unwrap_or_default()),
+                    &path,
+                    PutPayload::from(serde_json::to_vec(&marker).unwrap_or_default()),
                 )
                 .await
                 .map_err(|e| BuildError::Write {
                     day: *day,
-                    path: marker.to_string(),
+                    path: path.to_string(),
                     reason: e.to_string(),
                 })?;
+            ignored.insert(*day, marker.ignored);
             stats.partitions_built += 1;
             stats.raw_files += files.len() as u64;
             stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
         }
     }
-    Ok(stats)
+    Ok((stats, ignored))
 }
 
 /// Registers a folder of day-partitioned tile files as a table.
@@ -663,7 +712,28 @@ pub async fn register_tiles(
     ))
     .with_file_extension(".parquet")
     .with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
-    let schema = options.infer_schema(&ctx.state(), &url).await?;
+    // A tile folder's files all have one schema (its layout's): a table registered again
+    // over the same folder keeps the schema it had rather than reading every footer.
+    let known = match ctx.table_provider(table).await {
+        Ok(t) => t
+            .downcast_ref::<ListingTable>()
+            .filter(|l| l.table_paths().iter().any(|p| p.as_str() == url.as_str()))
+            .map(datafusion::datasource::TableProvider::schema),
+        Err(_) => None,
+    };
+    let schema = match known {
+        Some(s) if s.fields().len() > 1 => {
+            // The table's schema ends with the partition column, which is not in the files.
+            Arc::new(datafusion::arrow::datatypes::Schema::new(
+                s.fields()
+                    .iter()
+                    .filter(|f| f.name() != "dt")
+                    .cloned()
+                    .collect::<Vec<_>>(),
+            ))
+        }
+        _ => options.infer_schema(&ctx.state(), &url).await?,
+    };
     let config = ListingTableConfig::new(url)
         .with_listing_options(options)
         .with_schema(schema);
@@ -769,18 +839,36 @@ pub fn tiled_snapshot_query(
         let column = format!("__f{i}");
         let value = match agg {
             Aggregation::Count => format!("SUM(__c{i}){}", with(None)),
-            Aggregation::Sum => format!("SUM(__s{i}){}", with(None)),
-            Aggregation::Mean => format!(
-                "CASE WHEN SUM(__n{i}){w} > 0 THEN SUM(__s{i}){w} / CAST(SUM(__n{i}){w} AS DOUBLE) END",
-                w = with(None)
-            ),
+            Aggregation::Sum | Aggregation::Mean => {
+                let sum = format!("__s{i}");
+                let total = if pieces(source).float_sums.contains(&sum) {
+                    crate::rollups::exact_sum(&sum, &with(None))
+                } else {
+                    format!("SUM({sum}){}", with(None))
+                };
+                match agg {
+                    Aggregation::Sum => total,
+                    _ => format!(
+                        "CASE WHEN SUM(__n{i}){w} > 0 THEN {total} / CAST(SUM(__n{i}){w} AS DOUBLE) END",
+                        w = with(None)
+                    ),
+                }
+            }
             Aggregation::Min => format!("MIN(__m{i}){}", with(None)),
             Aggregation::Max => format!("MAX(__m{i}){}", with(None)),
             // Pieces are disjoint sets of days: their active days add up.
             Aggregation::ActiveDays => format!("COALESCE(SUM(__ad{i}){}, 0)", with(None)),
             Aggregation::First | Aggregation::Last => {
-                let func = if *agg == Aggregation::First { "first_value" } else { "last_value" };
-                let order = if has_arrival { format!("__vt{i}, __va{i}, __v{i}") } else { format!("__vt{i}, __v{i}") };
+                let func = if *agg == Aggregation::First {
+                    "first_value"
+                } else {
+                    "last_value"
+                };
+                let order = if has_arrival {
+                    format!("__vt{i}, __va{i}, __v{i}")
+                } else {
+                    format!("__vt{i}, __v{i}")
+                };
                 format!("{func}(__v{i} ORDER BY {order}){}", with(rows))
             }
             Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__tf{i}) AS BIGINT)"),
@@ -795,7 +883,10 @@ pub fn tiled_snapshot_query(
                     crate::rollups::distinct_pieces_sql(l, i, pieces(source), day, read.knowledge),
                     since.clone().unwrap_or_else(|| "TRUE".to_string())
                 ));
-                joins.push(format!("LEFT JOIN {c} ON {c}.__key = p.__key", c = ident(&cte)));
+                joins.push(format!(
+                    "LEFT JOIN {c} ON {c}.__key = p.__key",
+                    c = ident(&cte)
+                ));
                 let v = format!("{}.__v", ident(&cte));
                 layer0.push(feature_column(f, *agg, &v));
                 continue;
