@@ -239,12 +239,18 @@ pub(crate) fn equal_runs(
     runs
 }
 
+/// Rows per row group of a tile file. Tile rows are written sorted by key, so a backfill
+/// cut into ranges of keys skips, by the key statistics of each row group, the groups of
+/// other ranges instead of decoding every tile file once per range.
+pub const TILE_ROW_GROUP_ROWS: usize = 16 * 1024;
+
 /// Parquet settings of tile files: LZ4 (raw), which is several times cheaper to set up
 /// and decode than zstd for the many small column chunks tiles have; tiles are an
-/// intermediate layer, read back by daymark only.
+/// intermediate layer, read back by daymark only. Row groups of [`TILE_ROW_GROUP_ROWS`].
 pub fn tile_writer_properties() -> WriterProperties {
     WriterProperties::builder()
         .set_compression(Compression::LZ4_RAW)
+        .set_max_row_group_size(TILE_ROW_GROUP_ROWS)
         .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
         .build()
 }

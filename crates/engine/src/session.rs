@@ -43,9 +43,11 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
             execution.sort_spill_reservation_bytes.min(limit / 32);
         // A plan of many operators shares a small limit fairly among dozens of spilling
         // consumers; one batch of 8,192 rows can then be more than a consumer's share
-        // (measured: a 40 MiB limit on the 10M-event benchmark). Smaller batches under a
-        // small limit: a batch per 16 KiB of limit, between 1,024 and the default.
-        let batch = config.batch_size().min((limit / (16 << 10)).max(1024));
+        // (measured: a 40 MiB limit on the 10M-event benchmark; and, now and then, a
+        // sort of the memory-limited backfill test at 64 MiB with batches of 4,096 rows).
+        // Smaller batches under a small limit: a batch per 32 KiB of limit, between 1,024
+        // and the default.
+        let batch = config.batch_size().min((limit / (32 << 10)).max(1024));
         config = config.with_batch_size(batch);
     }
     if let Some(n) = opts.target_partitions {

@@ -262,13 +262,13 @@ pub fn tile_sql(
     });
     cols.extend(layout.columns.iter().cloned());
     format!(
-        "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part",
+        "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part, __key",
         cols.join(", "),
         rows_sql(pipeline, source, days)
     )
 }
 
-/// The SQL of a distinct-value tile of partitions `days`, ordered by partition.
+/// The SQL of a distinct-value tile of partitions `days`, ordered by partition and key.
 pub fn distinct_sql(
     pipeline: &Pipeline,
     source: &Source,
@@ -281,7 +281,7 @@ pub fn distinct_sql(
         .map(|f| format!(" AND ({f})"))
         .unwrap_or_default();
     format!(
-        "SELECT DISTINCT __part, __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh} ORDER BY __part",
+        "SELECT DISTINCT __part, __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh} ORDER BY __part, __key",
         rows_sql(pipeline, source, days)
     )
 }
