@@ -267,6 +267,22 @@ pub fn columns(
     cols
 }
 
+/// [`columns`] as `agg AS name`, for rows grouped by event day as well as by key (day
+/// pieces; the first step of a roll-up): active days are then 0 or 1, found without
+/// DataFusion's per-group sets of distinct values, which took most of a daily build's time
+/// (measured with `perf`, docs/benchmarks.md). Every other column combines the same way
+/// again over such groups.
+fn one_day_aggregates(cols: &[(String, String)]) -> Vec<String> {
+    cols.iter()
+        .map(|(n, a)| match n.strip_prefix("__ad") {
+            Some(i) => format!(
+                "MAX(CASE WHEN __c{i} > 0 THEN CAST(1 AS BIGINT) ELSE CAST(0 AS BIGINT) END) AS {n}"
+            ),
+            None => format!("{a} AS {n}"),
+        })
+        .collect()
+}
+
 /// The window starts of the features (and population) reading `source` for snapshot
 /// `day`, and whether one of them looks back without bound.
 fn window_starts(pipeline: &Pipeline, source: &str, day: NaiveDate) -> (BTreeSet<NaiveDate>, bool) {
@@ -482,14 +498,31 @@ async fn build(
             firsts.iter().map(|d| date(*d)).collect::<Vec<_>>().join(", ")
         )
         };
-    let cols: Vec<String> = columns(pipeline, layout, float_sums)
-        .into_iter()
-        .map(|(name, agg)| format!("{agg} AS {name}"))
-        .collect();
+    let cols = columns(pipeline, layout, float_sums);
+    // With active days among the columns, rows are first combined per event day (see
+    // `one_day_aggregates`), whose active days then add up.
+    let two_steps = cols.iter().any(|(n, _)| n.starts_with("__ad"));
+    let (aggs, from) = if two_steps {
+        let per_day = format!(
+            "SELECT __part, __key, __t, {} FROM ({}) GROUP BY __part, __key, __t",
+            one_day_aggregates(&cols).join(", "),
+            rows(&layout.table())
+        );
+        let aggs: Vec<String> = cols
+            .iter()
+            .map(|(n, a)| match n.starts_with("__ad") {
+                true => format!("SUM({n}) AS {n}"),
+                false => format!("{a} AS {n}"),
+            })
+            .collect();
+        (aggs, per_day)
+    } else {
+        let aggs = cols.iter().map(|(n, a)| format!("{a} AS {n}")).collect();
+        (aggs, rows(&layout.table()))
+    };
     let sql = format!(
-        "SELECT __part, __key, __part AS __lo, {} FROM ({}) GROUP BY __part, __key ORDER BY __part",
-        cols.join(", "),
-        rows(&layout.table())
+        "SELECT __part, __key, __part AS __lo, {} FROM ({from}) GROUP BY __part, __key ORDER BY __part",
+        aggs.join(", ")
     );
     crate::tiles::write_split(ctx, &sql, out, &dir(layout, pipeline, out, level), &firsts).await?;
     for (i, _, _) in &layout.distinct {
@@ -831,7 +864,7 @@ pub fn pieces_sql(
     } else {
         "__key IS NOT NULL"
     };
-    let aggs: Vec<String> = cols.iter().map(|(n, a)| format!("{a} AS {n}")).collect();
+    let aggs = one_day_aggregates(&cols);
     let names: Vec<&str> = cols.iter().map(|(n, _)| n.as_str()).collect();
     let mut parts = Vec::new();
     if !pieces.days.is_empty() || pieces.spans.is_empty() {
