@@ -250,7 +250,7 @@ pub const TILE_ROW_GROUP_ROWS: usize = 16 * 1024;
 pub fn tile_writer_properties() -> WriterProperties {
     WriterProperties::builder()
         .set_compression(Compression::LZ4_RAW)
-        .set_max_row_group_size(TILE_ROW_GROUP_ROWS)
+        .set_max_row_group_row_count(Some(TILE_ROW_GROUP_ROWS))
         .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
         .build()
 }

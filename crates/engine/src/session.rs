@@ -2,6 +2,9 @@
 
 use datafusion::error::Result;
 use datafusion::execution::disk_manager::DiskManagerBuilder;
+use datafusion::execution::memory_pool::{
+    MemoryConsumer, MemoryLimit, MemoryPool, MemoryReservation,
+};
 use datafusion::execution::runtime_env::RuntimeEnvBuilder;
 use datafusion::prelude::{SessionConfig, SessionContext};
 use std::sync::Arc;
@@ -70,16 +73,77 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
         // and spill, where the default greedy pool let the first sort take it all and the
         // second fail (measured on the 10M-event benchmark world at 128 MiB).
         let pool = datafusion::execution::memory_pool::FairSpillPool::new(limit);
-        runtime = runtime.with_memory_pool(Arc::new(
+        runtime = runtime.with_memory_pool(Arc::new(RepartitionGranted(Arc::new(
             datafusion::execution::memory_pool::TrackConsumersPool::new(
                 pool,
                 std::num::NonZeroUsize::new(5).expect("5 is not zero"),
             ),
-        ));
+        ))));
     }
     let ctx = SessionContext::new_with_config_rt(config, Arc::new(runtime.build()?));
     crate::functions::register(&ctx);
     Ok(ctx)
+}
+
+/// A memory pool that always grants DataFusion's repartition buffers (they are counted,
+/// so the other operators' fair shares shrink, but never refused).
+///
+/// DataFusion 55 writes a refused repartition batch to a spill pool shared by the input
+/// tasks, whose reader waits on the oldest file only: when two tasks spill at once the
+/// query can stop for good with every thread parked (apache/datafusion#24883, fixed
+/// upstream by #24891, not in 55.2). Measured here: a `--memory-limit 300MiB` backfill of
+/// the 100M-event benchmark world stopped that way after its tiles. Repartition buffers
+/// hold batches in flight between operators, a few per partition.
+#[derive(Debug)]
+struct RepartitionGranted(Arc<dyn MemoryPool>);
+
+impl std::fmt::Display for RepartitionGranted {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        self.0.fmt(f)
+    }
+}
+
+impl MemoryPool for RepartitionGranted {
+    fn name(&self) -> &str {
+        self.0.name()
+    }
+
+    fn register(&self, consumer: &MemoryConsumer) {
+        self.0.register(consumer)
+    }
+
+    fn unregister(&self, consumer: &MemoryConsumer) {
+        self.0.unregister(consumer)
+    }
+
+    fn grow(&self, reservation: &MemoryReservation, additional: usize) {
+        self.0.grow(reservation, additional)
+    }
+
+    fn shrink(&self, reservation: &MemoryReservation, shrink: usize) {
+        self.0.shrink(reservation, shrink)
+    }
+
+    fn try_grow(&self, reservation: &MemoryReservation, additional: usize) -> Result<()> {
+        if reservation
+            .consumer()
+            .name()
+            .starts_with("RepartitionExec[")
+        {
+            self.0.grow(reservation, additional);
+            Ok(())
+        } else {
+            self.0.try_grow(reservation, additional)
+        }
+    }
+
+    fn reserved(&self) -> usize {
+        self.0.reserved()
+    }
+
+    fn memory_limit(&self) -> MemoryLimit {
+        self.0.memory_limit()
+    }
 }
 
 /// Parses sizes such as `2GiB`, `512MiB`, `1.5GB`, `1000000`.
