@@ -234,16 +234,7 @@ pub fn columns(
             Aggregation::Min => cols.push((format!("__m{i}"), format!("MIN(__m{i})"))),
             Aggregation::Max => cols.push((format!("__m{i}"), format!("MAX(__m{i})"))),
             Aggregation::First | Aggregation::Last => {
-                let func = if *agg == Aggregation::First {
-                    "first_value"
-                } else {
-                    "last_value"
-                };
-                let order = if has_arrival {
-                    format!("__vt{i}, __va{i}, __v{i}")
-                } else {
-                    format!("__vt{i}, __v{i}")
-                };
+                let (func, order) = crate::tiles::first_last_of_partials(*agg, i, has_arrival);
                 let mut names = vec![format!("__v{i}"), format!("__vt{i}")];
                 if has_arrival {
                     names.push(format!("__va{i}"));

@@ -552,6 +552,27 @@ pub(crate) async fn collect(
         .map_err(engine)
 }
 
+/// The aggregate function of first/last feature `i` over partial rows (tile rows, pieces)
+/// and the order it takes them in: event time, then arrival time where the source has
+/// one, then value (the naive path's order).
+pub(crate) fn first_last_of_partials(
+    agg: Aggregation,
+    i: usize,
+    has_arrival: bool,
+) -> (&'static str, String) {
+    let func = if agg == Aggregation::First {
+        "first_value"
+    } else {
+        "last_value"
+    };
+    let order = if has_arrival {
+        format!("__vt{i}, __va{i}, __v{i}")
+    } else {
+        format!("__vt{i}, __v{i}")
+    };
+    (func, order)
+}
+
 fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
     child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"])
 }
@@ -859,16 +880,7 @@ pub fn tiled_snapshot_query(
             // Pieces are disjoint sets of days: their active days add up.
             Aggregation::ActiveDays => format!("COALESCE(SUM(__ad{i}){}, 0)", with(None)),
             Aggregation::First | Aggregation::Last => {
-                let func = if *agg == Aggregation::First {
-                    "first_value"
-                } else {
-                    "last_value"
-                };
-                let order = if has_arrival {
-                    format!("__vt{i}, __va{i}, __v{i}")
-                } else {
-                    format!("__vt{i}, __v{i}")
-                };
+                let (func, order) = first_last_of_partials(*agg, i, has_arrival);
                 format!("{func}(__v{i} ORDER BY {order}){}", with(rows))
             }
             Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__tf{i}) AS BIGINT)"),
