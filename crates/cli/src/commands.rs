@@ -215,11 +215,11 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                         stats.partitions_reused,
                         stats.rollups_built,
                         stats.rollups_reused,
-                        stats.null_key_rows,
-                        stats.event_after_arrival_rows
+                        stats.ignored.null_key_rows,
+                        stats.ignored.event_after_arrival_rows
                     )
                 },
-                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "rollups_built": stats.rollups_built, "rollups_reused": stats.rollups_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.null_key_rows, "event_after_arrival_rows": stats.event_after_arrival_rows}),
+                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "rollups_built": stats.rollups_built, "rollups_reused": stats.rollups_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.ignored.null_key_rows, "event_after_arrival_rows": stats.ignored.event_after_arrival_rows}),
             );
             total.add(stats);
         }
@@ -234,7 +234,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
                     t_tiles.elapsed().as_secs_f64()
                 )
             },
-            json!({"seconds": t_tiles.elapsed().as_secs_f64(), "raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.null_key_rows, "event_after_arrival_rows": total.event_after_arrival_rows}),
+            json!({"seconds": t_tiles.elapsed().as_secs_f64(), "raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.ignored.null_key_rows, "event_after_arrival_rows": total.ignored.event_after_arrival_rows}),
         );
     }
     let mut rows = 0u64;

@@ -793,8 +793,7 @@ pub async fn plan_day(
         for (_, n) in checked.range(read.first_day.unwrap_or(NaiveDate::MIN)..=day) {
             ignored.add(n);
         }
-        (stats.null_key_rows, stats.event_after_arrival_rows) =
-            (ignored.null_key_rows, ignored.event_after_arrival_rows);
+        stats.ignored = ignored;
         plan.sources.insert(name.clone(), pieces);
         all_stats.insert(name.clone(), stats);
     }

@@ -436,10 +436,9 @@ pub struct TileStats {
     pub raw_files: u64,
     /// Raw bytes read (sizes of the files read).
     pub raw_bytes: u64,
-    /// Rows with a null key in the partitions the build covers (ignored, counted).
-    pub null_key_rows: u64,
-    /// Rows whose event time is after their arrival time beyond the tolerance.
-    pub event_after_arrival_rows: u64,
+    /// Rows of the partitions the build covers that were ignored (null key) or look
+    /// wrong (clock skew).
+    pub ignored: Ignored,
     /// Week and month roll-ups built (or rebuilt) ([`crate::rollups`]).
     pub rollups_built: u64,
     /// Roll-ups whose stored copy was still current.
@@ -453,8 +452,7 @@ impl TileStats {
         self.partitions_reused += other.partitions_reused;
         self.raw_files += other.raw_files;
         self.raw_bytes += other.raw_bytes;
-        self.null_key_rows += other.null_key_rows;
-        self.event_after_arrival_rows += other.event_after_arrival_rows;
+        self.ignored.add(&other.ignored);
         self.rollups_built += other.rollups_built;
         self.rollups_reused += other.rollups_reused;
     }
@@ -496,8 +494,7 @@ pub async fn prepare(
         for n in ignored.values() {
             total.add(n);
         }
-        (s.null_key_rows, s.event_after_arrival_rows) =
-            (total.null_key_rows, total.event_after_arrival_rows);
+        s.ignored = total;
         if set.is_empty() {
             stats.insert(source.clone(), s);
             continue;
