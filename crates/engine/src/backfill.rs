@@ -19,9 +19,19 @@
 //!
 //! Active days and distinct counts first merge, per key and day or per key and value, the
 //! visibility intervals of all rows (gaps and islands), so that each counts once.
+//!
 //! The population is computed the same way into spans of days per key, expanded with
-//! `unnest(range(...))` into the spine of (key, day) rows. Everything is DataFusion SQL of
-//! built-in functions, so the plan can run on a cluster unchanged. The naive per-day query
+//! `unnest(range(...))` into the spine of (key, day) rows.
+//!
+//! When every aggregate feature is a count, sum, mean, active days or days since the
+//! first/last event ([`direct_features`]), the query skips the +/- rows: the visible tile
+//! rows (at their event day) and the spine (at its snapshot day) go through one sort per
+//! key, and daymark's windowed-total functions (`window_totals.rs`) aggregate, for each
+//! spine row, the rows visible that day.
+//!
+//! Everything is DataFusion SQL of built-in functions and daymark's registered window
+//! functions (`functions.rs`, `window_totals.rs`; a cluster's executors register them
+//! too). The naive per-day query
 //! (`sql.rs`) stays the oracle: `tests/tiled_vs_naive.rs` compares every cell.
 
 use crate::build::{snapshot_path, BuildError, DayReport, DayWriter, StagedCheck};
@@ -277,6 +287,233 @@ fn is_float(t: Option<&DataType>) -> bool {
     )
 }
 
+/// Whether every aggregate feature of `pipeline` is one that the windowed-total functions
+/// ([`crate::window_totals`]) compute straight from tile rows: counts, sums and means of
+/// integers, decimals or floats, active days, days since the first or last event. Other
+/// aggregations (min, max, first, last, distinct counts) take the general query.
+pub fn direct_features(pipeline: &Pipeline, types: &TileTypes) -> bool {
+    pipeline.features.iter().enumerate().all(|(i, f)| {
+        let FeatureDef::Aggregate { source, agg, .. } = &f.def else {
+            return true;
+        };
+        match agg {
+            Aggregation::Count
+            | Aggregation::ActiveDays
+            | Aggregation::DaysSinceFirst
+            | Aggregation::DaysSinceLast => true,
+            Aggregation::Sum | Aggregation::Mean => matches!(
+                types.get(&(source.clone(), format!("__s{i}"))),
+                Some(
+                    DataType::Int64
+                        | DataType::UInt64
+                        | DataType::Float16
+                        | DataType::Float32
+                        | DataType::Float64
+                        | DataType::Decimal128(_, _)
+                )
+            ),
+            _ => false,
+        }
+    })
+}
+
+/// The rest of [`range_query`] after the spine when [`direct_features`] holds: one UNION
+/// of the visible tile rows (at their event day) and the spine (at its snapshot day), and
+/// per feature one windowed-total function over each key's rows in day order; the spine
+/// rows carry the snapshots.
+fn direct_tail(
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    reads_last: &BTreeMap<String, crate::sql::SourceRead>,
+    types: &TileTypes,
+    mut ctes: Vec<String>,
+) -> String {
+    use crate::window_totals::WindowKind;
+    // Value columns of the union: (name, type, source, expression over the tile row).
+    let mut columns: Vec<(String, DataType, String, String)> = Vec::new();
+    // (source, tile column) -> the first tile column of that source defined the same way.
+    let mut same_columns: HashMap<(String, String), String> = HashMap::new();
+    for (name, l) in layouts {
+        let mut first: HashMap<&str, &str> = HashMap::new();
+        for c in &l.columns {
+            if let Some((def, col)) = c.rsplit_once(" AS ") {
+                let canonical = *first.entry(def).or_insert(col);
+                same_columns.insert((name.clone(), col.to_string()), canonical.to_string());
+            }
+        }
+    }
+    let mut windows: Vec<String> = Vec::new();
+    let mut layer0 = vec![
+        format!("p.__key AS {}", ident(&pipeline.file.key)),
+        "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
+    ];
+    for (i, f) in pipeline.features.iter().enumerate() {
+        let FeatureDef::Aggregate {
+            source,
+            agg,
+            window,
+            ..
+        } = &f.def
+        else {
+            continue;
+        };
+        if !layouts.contains_key(source) || !reads_last.contains_key(source) {
+            continue;
+        }
+        let w = if agg.is_unbounded() {
+            None
+        } else {
+            window.days()
+        };
+        let bound = w
+            .map(|w| w.to_string())
+            .unwrap_or_else(|| "CAST(NULL AS BIGINT)".to_string());
+        let mut call = |kind: WindowKind, col: String, ty: DataType, expr: String, out: String| {
+            // Features over the same tile column (a count in three windows, the count
+            // that active days also reads) share one union column.
+            let expr = same_columns
+                .get(&(source.clone(), expr.clone()))
+                .cloned()
+                .unwrap_or(expr);
+            let col = match columns.iter().find(|c| c.2 == *source && c.3 == expr) {
+                Some(c) => c.0.clone(),
+                None => {
+                    columns.push((col.clone(), ty, source.clone(), expr));
+                    col
+                }
+            };
+            windows.push(format!(
+                "{}({col}, __p, __tn, __vn, {bound}) OVER (PARTITION BY __key ORDER BY __p) AS {out}",
+                kind.name()
+            ));
+        };
+        let v = match agg {
+            Aggregation::Count => {
+                call(
+                    WindowKind::Sum,
+                    format!("__xc{i}"),
+                    DataType::Int64,
+                    format!("__c{i}"),
+                    format!("__c{i}"),
+                );
+                format!("p.__c{i}")
+            }
+            Aggregation::Sum | Aggregation::Mean => {
+                let t = types
+                    .get(&(source.clone(), format!("__s{i}")))
+                    .cloned()
+                    .unwrap_or(DataType::Int64);
+                let float = is_float(Some(&t));
+                let s_col = same_columns
+                    .get(&(source.clone(), format!("__s{i}")))
+                    .cloned()
+                    .unwrap_or_else(|| format!("__s{i}"));
+                let (t, x) = if float {
+                    (
+                        DataType::Decimal128(38, 12),
+                        format!("CAST({s_col} AS DECIMAL(38, 12))"),
+                    )
+                } else {
+                    (t, s_col)
+                };
+                call(WindowKind::Sum, format!("__xs{i}"), t, x, format!("__s{i}"));
+                call(
+                    WindowKind::Sum,
+                    format!("__xn{i}"),
+                    DataType::Int64,
+                    format!("__n{i}"),
+                    format!("__n{i}"),
+                );
+                let sum = if float {
+                    format!("CAST(p.__s{i} AS DOUBLE)")
+                } else {
+                    format!("p.__s{i}")
+                };
+                if *agg == Aggregation::Sum {
+                    format!("CASE WHEN p.__n{i} > 0 THEN {sum} END")
+                } else {
+                    format!("CASE WHEN p.__n{i} > 0 THEN {sum} / CAST(p.__n{i} AS DOUBLE) END")
+                }
+            }
+            Aggregation::ActiveDays => {
+                call(
+                    WindowKind::Days,
+                    format!("__xc{i}"),
+                    DataType::Int64,
+                    format!("__c{i}"),
+                    format!("__d{i}"),
+                );
+                format!("p.__d{i}")
+            }
+            Aggregation::DaysSinceFirst | Aggregation::DaysSinceLast => {
+                let kind = if *agg == Aggregation::DaysSinceFirst {
+                    WindowKind::FirstDay
+                } else {
+                    WindowKind::LastDay
+                };
+                call(
+                    kind,
+                    format!("__xc{i}"),
+                    DataType::Int64,
+                    format!("__c{i}"),
+                    format!("__t{i}"),
+                );
+                format!("p.__dn - p.__t{i}")
+            }
+            // Not taken: `direct_features` sends these to the general query.
+            _ => "NULL".to_string(),
+        };
+        layer0.push(feature_column(f, *agg, &v));
+    }
+    // One branch per source with features, then the spine; each names every column.
+    let mut sources: Vec<&str> = Vec::new();
+    for (_, _, source, _) in &columns {
+        if !sources.contains(&source.as_str()) {
+            sources.push(source);
+        }
+    }
+    let mut branches = Vec::new();
+    for from in sources.iter().map(Some).chain([None]) {
+        let mut cols = match from {
+            Some(_) => vec![
+                "__key".to_string(),
+                "__tn AS __p".to_string(),
+                "__tn".to_string(),
+                "__vn".to_string(),
+            ],
+            None => vec![
+                "__key".to_string(),
+                "__dn AS __p".to_string(),
+                "CAST(NULL AS BIGINT) AS __tn".to_string(),
+                "CAST(NULL AS BIGINT) AS __vn".to_string(),
+            ],
+        };
+        for (name, ty, source, expr) in &columns {
+            let v = if from == Some(&source.as_str()) {
+                expr.clone()
+            } else {
+                typed_null(ty)
+            };
+            cols.push(format!("{v} AS {name}"));
+        }
+        let table = match from {
+            Some(s) => ident(&format!("{s}__v")),
+            None => "__spine".to_string(),
+        };
+        branches.push(format!("SELECT {} FROM {table}", cols.join(", ")));
+    }
+    ctes.push(format!("__u AS ({})", branches.join("\nUNION ALL\n")));
+    let mut w_cols = vec![
+        "__key".to_string(),
+        "__p AS __dn".to_string(),
+        "__tn".to_string(),
+    ];
+    w_cols.extend(windows);
+    ctes.push(format!("__w AS (SELECT {} FROM __u)", w_cols.join(", ")));
+    ctes.push("__population AS (SELECT * FROM __w WHERE __tn IS NULL)".to_string());
+    finish(pipeline, &ctes, &layer0, &[], "snapshot_date, ")
+}
+
 /// One branch of the big UNION: named columns (the rest are NULL).
 struct Branch {
     from: String,
@@ -399,6 +636,9 @@ pub fn range_query(
         "__spine AS (SELECT __key, unnest(range(__s, __e + 1)) AS __dn FROM __pop_spans WHERE __s <= __e)"
             .to_string(),
     );
+    if direct_features(pipeline, types) {
+        return direct_tail(pipeline, layouts, &reads_last, types, ctes);
+    }
 
     // The UNION of contributions: +/- rows, expanded late rows, and the spine (kind 1).
     let mut branches: Vec<Branch> = Vec::new();

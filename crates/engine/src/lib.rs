@@ -6,6 +6,8 @@
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
 //! - [`functions`]: daymark's running-sum/min/max window functions (an executor must
 //!   register them: no plan codec ships yet).
+//! - [`window_totals`]: windowed sums, active days and first/last days of each key's tile
+//!   rows, for backfills whose features are all of those kinds (registered likewise).
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
@@ -25,6 +27,7 @@ pub mod sources;
 pub mod sql;
 pub mod tiles;
 pub mod time;
+pub mod window_totals;
 
 pub use check::{check_against_schemas, check_expr, FeatureTypes};
 pub use sources::{inspect_sources, register_sources, schemas_of, SourceReport};

@@ -82,6 +82,7 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     }
     let ctx = SessionContext::new_with_config_rt(config, Arc::new(runtime.build()?));
     crate::functions::register(&ctx);
+    crate::window_totals::register(&ctx);
     Ok(ctx)
 }
 

@@ -7,7 +7,9 @@ use arrow::compute::concat_batches;
 use arrow::datatypes::{DataType, Float64Type};
 use arrow::util::display::array_value_to_string;
 use chrono::NaiveDate;
-use daymark_engine::backfill::{build_range, key_ranges, range_query, tile_types, KeyRange};
+use daymark_engine::backfill::{
+    build_range, direct_features, key_ranges, range_query, tile_types, KeyRange,
+};
 use daymark_engine::rollups::{plan_day, Level};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
 use daymark_engine::{inspect_sources, register_sources, snapshot_query};
@@ -324,6 +326,98 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
     .await;
     let tiled = run(&ctx, &tiled_snapshot_query(&pipeline, &ls, &plan, None).sql).await;
     assert_same(&naive, &tiled, "2026-06-17");
+}
+
+/// A pipeline of the demo's counts, sums, means, active days and days-since features only
+/// (no min, max, last or distinct count) takes the backfill's direct query (windowed
+/// totals per key, `window_totals.rs`) instead of the general one; it equals the naive path
+/// for every cell of 60 days, across the daylight-saving change, in both knowledge modes,
+/// with late arrivals and re-deliveries, and also cut into ranges of keys.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn direct_range_query_equals_naive_for_every_day_in_both_modes() {
+    use daymark_spec::{Aggregation, FeatureDef};
+    let dir = tempfile::tempdir().unwrap();
+    let world = dir.path().join("world");
+    let mut cfg = WorldConfig::new(&world, 120, 100);
+    cfg.start = day("2026-02-01");
+    cfg.seed = 9;
+    generate(&cfg).unwrap();
+    let full = demo_pipeline(&world, &dir.path().join("out"));
+    let mut pipeline = full.clone();
+    pipeline.features.retain(|f| {
+        !matches!(
+            f.def,
+            FeatureDef::Aggregate {
+                agg: Aggregation::Min
+                    | Aggregation::Max
+                    | Aggregation::First
+                    | Aggregation::Last
+                    | Aggregation::CountDistinct,
+                ..
+            }
+        )
+    });
+    assert!(pipeline.features.len() >= 25, "{}", pipeline.features.len());
+    let reports = inspect_sources(&pipeline).await;
+    let out = daymark_store::resolve(&dir.path().join("out").display().to_string(), None).unwrap();
+    let ctx = daymark_engine::session::session(&Default::default()).unwrap();
+    register_sources(&ctx, &pipeline, &reports).await.unwrap();
+    let (first, last) = (day("2026-02-20"), day("2026-04-20"));
+    let days: Vec<NaiveDate> = first.iter_days().take_while(|d| *d <= last).collect();
+    // The whole demo pipeline takes the general query (its tile tables are registered
+    // under the same names, so this comes first).
+    let full_ls = layouts(&full);
+    prepare(&ctx, &full, &reports, &full_ls, &out, &days[..1], None)
+        .await
+        .unwrap();
+    assert!(!direct_features(&full, &tile_types(&ctx, &full_ls).await));
+    let ls = layouts(&pipeline);
+    prepare(&ctx, &pipeline, &reports, &ls, &out, &days, None)
+        .await
+        .unwrap();
+    let types = tile_types(&ctx, &ls).await;
+    assert!(direct_features(&pipeline, &types));
+    let mut modes_differ = 0;
+    let mut population = 0;
+    let mut as_known: Vec<RecordBatch> = Vec::new();
+    for mode in [None, Some(Knowledge::EventTime)] {
+        let sql = range_query(&pipeline, &ls, first, last, mode, &types, &KeyRange::all());
+        assert!(sql.contains("daymark_window_sum"), "{sql}");
+        let range = run(&ctx, &sql).await;
+        let ranges = key_ranges(&ctx, &pipeline, &ls, first, last, mode, 3_000)
+            .await
+            .unwrap();
+        assert!(ranges.len() >= 3, "{ranges:?}");
+        let mut parts = Vec::new();
+        for r in &ranges {
+            parts.push(
+                run(
+                    &ctx,
+                    &range_query(&pipeline, &ls, first, last, mode, &types, r),
+                )
+                .await,
+            );
+        }
+        for (n, d) in days.iter().enumerate() {
+            let naive = run(&ctx, &snapshot_query(&pipeline, *d, mode).sql).await;
+            assert_same(
+                &naive,
+                &rows_of_day(&range, *d),
+                &format!("direct {d} {mode:?}"),
+            );
+            let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, *d)).collect();
+            let joined = concat_batches(&of_day[0].schema(), &of_day).unwrap();
+            assert_same(&naive, &joined, &format!("direct, key ranges {d} {mode:?}"));
+            population += naive.num_rows();
+            if mode.is_none() {
+                as_known.push(naive);
+            } else if as_known[n] != naive {
+                modes_differ += 1;
+            }
+        }
+    }
+    assert!(population > 5_000, "{population}");
+    assert!(modes_differ > 5, "{modes_differ}");
 }
 
 /// The daily build of `d`: plans its pieces (building what they need), then runs the
