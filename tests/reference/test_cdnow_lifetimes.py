@@ -104,3 +104,89 @@ def test_cdnow_frequency_and_recency_match_lifetimes(daymark, tmp_path):
         # lifetimes counts T to the last day of the period (1997-09-30); daymark counts
         # days to the snapshot day (1997-10-01), one more.
         assert age - 1 == row["T"], customer
+
+
+BACKFILL_PIPELINE = """
+daymark: 1
+name: cdnow_backfill
+timezone: UTC
+key: customer_id
+output: {out}
+sources:
+  purchases:
+    location: {log}
+    event_time: purchased_at
+population:
+  recent_activity: {{ source: purchases, within: 400d }}
+features:
+  - name: purchase_days
+    source: purchases
+    agg: active_days
+    window: all
+  - name: days_since_first
+    source: purchases
+    agg: days_since_first
+    fill: null
+  - name: days_since_last
+    source: purchases
+    agg: days_since_last
+    fill: null
+  - name: purchases_28d
+    source: purchases
+    agg: count
+    window: 28d
+  - name: dollars_28d
+    source: purchases
+    agg: sum
+    expr: dollars
+    window: 28d
+    fill: null
+"""
+
+
+def test_cdnow_backfill_matches_lifetimes_on_every_checked_day(daymark, tmp_path):
+    """A 31-day backfill (one set-based query: counts, sums, active days and days since,
+    the backfill's windowed-total path) gives, on its first and last day, lifetimes'
+    frequency (purchase days - 1), recency and T for the calibration period ending the day
+    before; and its 28-day purchase counts and dollar sums equal pandas' over the sample."""
+    df = load_sample()
+    log = tmp_path / "purchases"
+    con = duckdb.connect()
+    con.execute("SET TimeZone = 'UTC'")
+    con.register("sample", df)
+    con.execute(
+        f"""COPY (SELECT customer_id, CAST(date AS TIMESTAMPTZ) AS purchased_at, cds, dollars,
+                  strftime(date, '%Y-%m-%d') AS dt FROM sample)
+            TO '{log}' (FORMAT PARQUET, PARTITION_BY (dt))"""
+    )
+    pipeline = tmp_path / "cdnow_backfill.yaml"
+    pipeline.write_text(BACKFILL_PIPELINE.format(out=tmp_path / "out", log=log))
+    run = subprocess.run([str(daymark), "build", str(pipeline), "--from", "1997-09-01", "--to", "1997-10-01"],
+                         capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr + run.stdout
+
+    for day, period_end in [("1997-09-01", "1997-08-31"), ("1997-10-01", "1997-09-30")]:
+        got = con.execute(
+            f"SELECT customer_id, purchase_days, days_since_first, days_since_last, purchases_28d, dollars_28d FROM "
+            f"read_parquet('{tmp_path}/out/snapshots/dt={day}/part-0.parquet', hive_partitioning = false)"
+        ).fetchall()
+        got = {row[0]: row[1:] for row in got}
+        ref = summary_data_from_transaction_data(df, "customer_id", "date", observation_period_end=period_end)
+        assert len(got) == len(ref) == 2357, day
+        for customer, row in ref.iterrows():
+            purchase_days, first, last, _, _ = got[customer]
+            assert purchase_days - 1 == row["frequency"], (day, customer)
+            assert first - last == row["recency"], (day, customer)
+            assert first - 1 == row["T"], (day, customer)
+        # 28 days before the snapshot day, the day itself excluded (pandas, straight from the sample).
+        end = pd.Timestamp(day)
+        window = df[(df["date"] >= end - pd.Timedelta(days=28)) & (df["date"] < end)]
+        counts = window.groupby("customer_id").size()
+        dollars = window.groupby("customer_id")["dollars"].sum()
+        assert counts.sum() > 100, day
+        for customer, (_, _, _, n, total) in got.items():
+            assert n == counts.get(customer, 0), (day, customer)
+            if customer in dollars.index:
+                assert total == pytest.approx(dollars[customer], rel=1e-9), (day, customer)
+            else:
+                assert total is None, (day, customer)

@@ -245,8 +245,14 @@ pub async fn range_provenance(
         } else {
             "arrow_cast(NULL, 'Timestamp(Microsecond, Some(\"UTC\"))')".to_string()
         };
+        // Tiles of a source without an arrival column have no `__mar`.
+        let mar = if has_arrival {
+            "__mar".to_string()
+        } else {
+            "arrow_cast(NULL, 'Timestamp(Microsecond, Some(\"UTC\"))') AS __mar".to_string()
+        };
         let sql = format!(
-            "WITH g AS (SELECT dt, __vn, MAX(__mev) AS __mev, MAX(__mar) AS __mar, SUM(__rows) AS __rows FROM (SELECT dt, __mev, __mar, __rows, {vn} AS __vn FROM {} WHERE __key IS NOT NULL AND __t IS NOT NULL) WHERE __vn IS NOT NULL GROUP BY dt, __vn),
+            "WITH g AS (SELECT dt, __vn, MAX(__mev) AS __mev, MAX(__mar) AS __mar, SUM(__rows) AS __rows FROM (SELECT dt, __mev, {mar}, __rows, {vn} AS __vn FROM {} WHERE __key IS NOT NULL AND __t IS NOT NULL) WHERE __vn IS NOT NULL GROUP BY dt, __vn),
              d(dn, first_dt, last_dt) AS (VALUES {})
              SELECT d.dn, {} AS max_event, {arrival} AS max_arrival, CAST(COALESCE(SUM(g.__rows), 0) AS BIGINT) AS n
              FROM d LEFT JOIN g ON g.__vn <= d.dn AND g.dt <= d.last_dt AND g.dt >= d.first_dt
