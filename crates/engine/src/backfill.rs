@@ -143,20 +143,31 @@ const WORK_ROWS_PER_QUERY: u64 = 16_000_000;
 /// aggregation, the window sort and the final sort), measured as peak resident memory
 /// over working-set rows on the benchmark world (docs/benchmarks.md).
 const BYTES_PER_WORK_ROW: u64 = 280;
+/// The same for the windowed-total query ([`direct_features`]): DataFusion's
+/// non-streaming window operator holds its whole input, a copy of it and the results
+/// outside the memory pool (measured: peak 13.4 GB over 16M-row queries on the 100M
+/// world, docs/benchmarks.md seventh measurement). Its queries are cut three times
+/// smaller; they are several times cheaper per row.
+const DIRECT_BYTES_PER_WORK_ROW: u64 = 840;
 
 /// Working-set rows per backfill query: as the session was told, else what its memory
-/// limit holds, at most [`WORK_ROWS_PER_QUERY`].
-fn work_rows_per_query(ctx: &SessionContext) -> u64 {
+/// limit holds, at most [`WORK_ROWS_PER_QUERY`] (scaled down for the windowed-total query
+/// when `direct`).
+fn work_rows_per_query(ctx: &SessionContext, direct: bool) -> u64 {
     use datafusion::execution::memory_pool::MemoryLimit;
     let config = ctx.state().config().clone();
     if let Some(n) = config.get_extension::<crate::session::BackfillRowsPerQuery>() {
         return n.0;
     }
+    let per_row = if direct {
+        DIRECT_BYTES_PER_WORK_ROW
+    } else {
+        BYTES_PER_WORK_ROW
+    };
+    let most = WORK_ROWS_PER_QUERY * BYTES_PER_WORK_ROW / per_row;
     match ctx.runtime_env().memory_pool.memory_limit() {
-        MemoryLimit::Finite(limit) => {
-            (limit as u64 / BYTES_PER_WORK_ROW).clamp(1, WORK_ROWS_PER_QUERY)
-        }
-        _ => WORK_ROWS_PER_QUERY,
+        MemoryLimit::Finite(limit) => (limit as u64 / per_row).clamp(1, most),
+        _ => most,
     }
 }
 
@@ -1008,7 +1019,7 @@ pub async fn build_range(
         first,
         last,
         mode,
-        work_rows_per_query(ctx),
+        work_rows_per_query(ctx, direct_features(pipeline, &types)),
     )
     .await
     .map_err(engine(first))?;
