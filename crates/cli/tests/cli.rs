@@ -1,18 +1,24 @@
 //! The `daymark` binary end to end: generate a small world, check and explain the demo
 //! pipeline on it, and refuse broken input with the documented exit codes.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::process::Command;
+
+/// The crate's folder, read when the test runs (`cargo test` sets it): a test binary
+/// reused from a shared target folder keeps the compile-time path of the checkout that
+/// built it, which may be gone.
+fn manifest_dir() -> String {
+    std::env::var("CARGO_MANIFEST_DIR").unwrap_or_else(|_| env!("CARGO_MANIFEST_DIR").into())
+}
 
 fn daymark() -> Command {
     Command::new(env!("CARGO_BIN_EXE_daymark"))
 }
 
 fn demo_pipeline_for(world: &Path) -> String {
-    let text = std::fs::read_to_string(
-        Path::new(env!("CARGO_MANIFEST_DIR")).join("../../pipelines/demo.yaml"),
-    )
-    .unwrap();
+    let text =
+        std::fs::read_to_string(PathBuf::from(manifest_dir()).join("../../pipelines/demo.yaml"))
+            .unwrap();
     text.replace("../demo-data/world/", &format!("{}/", world.display()))
 }
 

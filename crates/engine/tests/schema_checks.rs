@@ -8,6 +8,13 @@ use proptest::prelude::*;
 use std::collections::HashMap;
 use std::path::PathBuf;
 
+/// The crate's folder, read when the test runs (`cargo test` sets it): a test binary
+/// reused from a shared target folder keeps the compile-time path of the checkout that
+/// built it, which may be gone.
+fn manifest_dir() -> String {
+    std::env::var("CARGO_MANIFEST_DIR").unwrap_or_else(|_| env!("CARGO_MANIFEST_DIR").into())
+}
+
 fn world_schemas() -> HashMap<String, Option<SchemaRef>> {
     HashMap::from([
         ("plays".to_string(), Some(plays_schema())),
@@ -17,9 +24,7 @@ fn world_schemas() -> HashMap<String, Option<SchemaRef>> {
 }
 
 fn repo_file(rel: &str) -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-        .join("../..")
-        .join(rel)
+    PathBuf::from(manifest_dir()).join("../..").join(rel)
 }
 
 #[test]

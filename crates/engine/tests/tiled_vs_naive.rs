@@ -17,15 +17,21 @@ use daymark_spec::Knowledge;
 use daymark_worldgen::{generate, WorldConfig};
 use std::path::{Path, PathBuf};
 
+/// The crate's folder, read when the test runs (`cargo test` sets it): a test binary
+/// reused from a shared target folder keeps the compile-time path of the checkout that
+/// built it, which may be gone.
+fn manifest_dir() -> String {
+    std::env::var("CARGO_MANIFEST_DIR").unwrap_or_else(|_| env!("CARGO_MANIFEST_DIR").into())
+}
+
 fn day(s: &str) -> NaiveDate {
     s.parse().unwrap()
 }
 
 fn demo_pipeline(world: &Path, out: &Path) -> daymark_spec::Pipeline {
-    let text = std::fs::read_to_string(
-        PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../../pipelines/demo.yaml"),
-    )
-    .unwrap();
+    let text =
+        std::fs::read_to_string(PathBuf::from(manifest_dir()).join("../../pipelines/demo.yaml"))
+            .unwrap();
     let text = text
         .replace("../demo-data/world/", &format!("{}/", world.display()))
         .replace(
