@@ -298,6 +298,22 @@ fn is_float(t: Option<&DataType>) -> bool {
     )
 }
 
+/// Sum or mean feature `i` of a population row `p` from its window's sum `__s{i}` (kept as
+/// DECIMAL when the values are floats) and count of non-null values `__n{i}`: NULL when
+/// the window holds no value.
+fn sum_or_mean(agg: Aggregation, i: usize, float: bool) -> String {
+    let sum = if float {
+        format!("CAST(p.__s{i} AS DOUBLE)")
+    } else {
+        format!("p.__s{i}")
+    };
+    if agg == Aggregation::Sum {
+        format!("CASE WHEN p.__n{i} > 0 THEN {sum} END")
+    } else {
+        format!("CASE WHEN p.__n{i} > 0 THEN {sum} / CAST(p.__n{i} AS DOUBLE) END")
+    }
+}
+
 /// Whether every aggregate feature of `pipeline` is one that the windowed-total functions
 /// ([`crate::window_totals`]) compute straight from tile rows: counts, sums and means of
 /// integers, decimals or floats, active days, days since the first or last event. Other
@@ -435,16 +451,7 @@ fn direct_tail(
                     format!("__n{i}"),
                     format!("__n{i}"),
                 );
-                let sum = if float {
-                    format!("CAST(p.__s{i} AS DOUBLE)")
-                } else {
-                    format!("p.__s{i}")
-                };
-                if *agg == Aggregation::Sum {
-                    format!("CASE WHEN p.__n{i} > 0 THEN {sum} END")
-                } else {
-                    format!("CASE WHEN p.__n{i} > 0 THEN {sum} / CAST(p.__n{i} AS DOUBLE) END")
-                }
+                sum_or_mean(*agg, i, float)
             }
             Aggregation::ActiveDays => {
                 call(
@@ -759,16 +766,7 @@ pub fn range_query(
                                 .unwrap_or(DataType::Int64)
                         },
                     );
-                    let sum = if float_sum {
-                        format!("CAST(p.__s{i} AS DOUBLE)")
-                    } else {
-                        format!("p.__s{i}")
-                    };
-                    if *agg == Aggregation::Sum {
-                        format!("CASE WHEN p.__n{i} > 0 THEN {sum} END")
-                    } else {
-                        format!("CASE WHEN p.__n{i} > 0 THEN {sum} / CAST(p.__n{i} AS DOUBLE) END")
-                    }
+                    sum_or_mean(*agg, i, float_sum)
                 }
                 Aggregation::Min | Aggregation::Max | Aggregation::First | Aggregation::Last => {
                     let (func, comb) = if matches!(agg, Aggregation::Min | Aggregation::First) {

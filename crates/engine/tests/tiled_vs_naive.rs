@@ -59,6 +59,34 @@ fn rows_of_day(all: &RecordBatch, d: NaiveDate) -> RecordBatch {
     arrow::compute::filter_record_batch(all, &mask).unwrap()
 }
 
+/// The range `days` cut into key ranges of about `rows` working-set rows (at least 3),
+/// each range's query run on its own.
+async fn key_range_results(
+    ctx: &datafusion::prelude::SessionContext,
+    pipeline: &daymark_spec::Pipeline,
+    ls: &std::collections::BTreeMap<String, daymark_engine::tiles::TileLayout>,
+    (first, last): (NaiveDate, NaiveDate),
+    mode: Option<Knowledge>,
+    types: &daymark_engine::backfill::TileTypes,
+    rows: u64,
+) -> Vec<RecordBatch> {
+    let ranges = key_ranges(ctx, pipeline, ls, first, last, mode, rows)
+        .await
+        .unwrap();
+    assert!(ranges.len() >= 3, "{ranges:?}");
+    let mut parts = Vec::new();
+    for r in &ranges {
+        parts.push(run(ctx, &range_query(pipeline, ls, first, last, mode, types, r)).await);
+    }
+    parts
+}
+
+/// The rows of snapshot `d` in key-range results, one range after the other.
+fn rows_of_day_in_parts(parts: &[RecordBatch], d: NaiveDate) -> RecordBatch {
+    let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, d)).collect();
+    concat_batches(&of_day[0].schema(), &of_day).unwrap()
+}
+
 /// Equal cell by cell; floats to 1e-9 relative (sums are added in another order).
 fn assert_same(a: &RecordBatch, b: &RecordBatch, what: &str) {
     assert_eq!(a.num_rows(), b.num_rows(), "{what}: row counts");
@@ -207,26 +235,12 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
             // Cut into ranges of keys (what a backfill too large for memory runs): the
             // ranges' rows of each day, one range after the other, are the whole query's
             // rows of that day in the same (key) order.
-            let ranges = key_ranges(&ctx, &pipeline, &ls, first, last, mode, 15_000)
-                .await
-                .unwrap();
-            assert!(ranges.len() >= 3, "{ranges:?}");
-            let mut parts = Vec::new();
-            for r in &ranges {
-                parts.push(
-                    run(
-                        &ctx,
-                        &range_query(&pipeline, &ls, first, last, mode, &floats, r),
-                    )
-                    .await,
-                );
-            }
+            let parts =
+                key_range_results(&ctx, &pipeline, &ls, (first, last), mode, &floats, 15_000).await;
             for d in &days {
-                let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, *d)).collect();
-                let joined = concat_batches(&of_day[0].schema(), &of_day).unwrap();
                 assert_same(
                     &rows_of_day(&range, *d),
-                    &joined,
+                    &rows_of_day_in_parts(&parts, *d),
                     &format!("key ranges {d}"),
                 );
             }
@@ -390,20 +404,8 @@ async fn direct_range_query_equals_naive_for_every_day_in_both_modes() {
         let sql = range_query(&pipeline, &ls, first, last, mode, &types, &KeyRange::all());
         assert!(sql.contains("daymark_window_sum"), "{sql}");
         let range = run(&ctx, &sql).await;
-        let ranges = key_ranges(&ctx, &pipeline, &ls, first, last, mode, 3_000)
-            .await
-            .unwrap();
-        assert!(ranges.len() >= 3, "{ranges:?}");
-        let mut parts = Vec::new();
-        for r in &ranges {
-            parts.push(
-                run(
-                    &ctx,
-                    &range_query(&pipeline, &ls, first, last, mode, &types, r),
-                )
-                .await,
-            );
-        }
+        let parts =
+            key_range_results(&ctx, &pipeline, &ls, (first, last), mode, &types, 3_000).await;
         for (n, d) in days.iter().enumerate() {
             let naive = run(&ctx, &snapshot_query(&pipeline, *d, mode).sql).await;
             assert_same(
@@ -411,9 +413,11 @@ async fn direct_range_query_equals_naive_for_every_day_in_both_modes() {
                 &rows_of_day(&range, *d),
                 &format!("direct {d} {mode:?}"),
             );
-            let of_day: Vec<RecordBatch> = parts.iter().map(|p| rows_of_day(p, *d)).collect();
-            let joined = concat_batches(&of_day[0].schema(), &of_day).unwrap();
-            assert_same(&naive, &joined, &format!("direct, key ranges {d} {mode:?}"));
+            assert_same(
+                &naive,
+                &rows_of_day_in_parts(&parts, *d),
+                &format!("direct, key ranges {d} {mode:?}"),
+            );
             population += naive.num_rows();
             if mode.is_none() {
                 as_known.push(naive);
