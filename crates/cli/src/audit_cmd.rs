@@ -78,7 +78,7 @@ pub async fn prepare(args: &AuditArgs) -> Result<std::result::Result<Prepared, u
         Ok(p) => p,
         Err(code) => return Ok(Err(code)),
     };
-    let (reports, problems, _) = inspect(&pipeline, &args.pipeline).await;
+    let (reports, problems, _) = inspect(&pipeline, &args.pipeline, None).await;
     if !problems.is_empty() {
         print_problems(&problems);
         return Ok(Err(exit::INVALID));

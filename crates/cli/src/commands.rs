@@ -4,7 +4,7 @@ use crate::exit;
 use anyhow::{Context, Result};
 use chrono::NaiveDate;
 use daymark_engine::{
-    check_against_schemas, inspect_sources, register_sources, schemas_of, snapshot_query,
+    check_against_schemas, inspect_sources_with, register_sources, schemas_of, snapshot_query,
     SourceReport,
 };
 use daymark_spec::{Diagnostic, FeatureDef, Knowledge, Pipeline, Population, SpecErrors};
@@ -124,11 +124,30 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         Ok(p) => p,
         Err(code) => return Ok(code),
     };
-    let (reports, problems, types) = inspect(&pipeline, &args.pipeline).await;
+    let out_text = args
+        .out
+        .clone()
+        .or_else(|| pipeline.file.output.clone())
+        .unwrap_or_else(|| "out".to_string());
+    let base = if args.out.is_some() {
+        None
+    } else {
+        pipeline.base_dir.as_deref()
+    };
+    let out = daymark_store::resolve(&out_text, base)?;
+    let (reports, problems, types) = inspect(&pipeline, &args.pipeline, Some(&out)).await;
     if !problems.is_empty() {
         print_problems(&problems);
         return Ok(exit::INVALID);
     }
+    let footers = reports
+        .values()
+        .fold(daymark_store::FooterReads::default(), |a, r| {
+            daymark_store::FooterReads {
+                read: a.read + r.footer_reads.read,
+                cached: a.cached + r.footer_reads.cached,
+            }
+        });
     // Every partition a window needs must exist (or carry a completeness marker).
     let mut missing: BTreeMap<String, Vec<NaiveDate>> = BTreeMap::new();
     for day in &days {
@@ -162,17 +181,6 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         }
         eprintln!("--allow-gaps: building without them");
     }
-    let out_text = args
-        .out
-        .clone()
-        .or_else(|| pipeline.file.output.clone())
-        .unwrap_or_else(|| "out".to_string());
-    let base = if args.out.is_some() {
-        None
-    } else {
-        pipeline.base_dir.as_deref()
-    };
-    let out = daymark_store::resolve(&out_text, base)?;
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit,
         target_partitions: None,
@@ -227,14 +235,16 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
             "read",
             || {
                 format!(
-                    "read {} raw file(s), {} in all; {} tile partition(s) reused ({:.1} s)",
+                    "read {} raw file(s), {} in all; {} tile partition(s) reused ({:.1} s); {} footer(s) read, {} from the footer cache",
                     total.raw_files,
                     human_bytes(total.raw_bytes),
                     total.partitions_reused,
-                    t_tiles.elapsed().as_secs_f64()
+                    t_tiles.elapsed().as_secs_f64(),
+                    footers.read,
+                    footers.cached
                 )
             },
-            json!({"seconds": t_tiles.elapsed().as_secs_f64(), "raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.ignored.null_key_rows, "event_after_arrival_rows": total.ignored.event_after_arrival_rows}),
+            json!({"seconds": t_tiles.elapsed().as_secs_f64(), "footers_read": footers.read, "footers_cached": footers.cached, "raw_files": total.raw_files, "raw_bytes": total.raw_bytes, "partitions_built": total.partitions_built, "partitions_reused": total.partitions_reused, "null_key_rows": total.ignored.null_key_rows, "event_after_arrival_rows": total.ignored.event_after_arrival_rows}),
         );
     }
     let mut rows = 0u64;
@@ -445,16 +455,19 @@ pub(crate) fn human_bytes(n: u64) -> String {
     }
 }
 
-/// Runs the checks that need the data; returns the reports and every problem.
+/// Runs the checks that need the data; returns the reports and every problem. With
+/// `footer_cache` (an output store), footers of files seen by an earlier run come from
+/// the cache kept there.
 pub(crate) async fn inspect(
     pipeline: &Pipeline,
     file: &Path,
+    footer_cache: Option<&daymark_store::Location>,
 ) -> (
     BTreeMap<String, SourceReport>,
     Vec<Diagnostic>,
     daymark_engine::FeatureTypes,
 ) {
-    let reports = inspect_sources(pipeline).await;
+    let reports = inspect_sources_with(pipeline, footer_cache).await;
     let mut problems: Vec<Diagnostic> = reports.values().flat_map(|r| r.problems.clone()).collect();
     let (mut schema_problems, types) = check_against_schemas(pipeline, &schemas_of(&reports));
     problems.append(&mut schema_problems);
@@ -473,7 +486,7 @@ pub async fn check(path: &Path, as_json: bool) -> Result<u8> {
         Ok(p) => p,
         Err(code) => return Ok(code),
     };
-    let (reports, problems, types) = inspect(&pipeline, path).await;
+    let (reports, problems, types) = inspect(&pipeline, path, None).await;
     let watermarks = daymark_labels::source_watermarks(&pipeline, &reports);
     if as_json {
         let sources: serde_json::Map<String, serde_json::Value> = reports
@@ -694,7 +707,7 @@ pub async fn explain(
         println!("{};", q.sql);
     }
     if plan {
-        let (reports, problems, _) = inspect(&pipeline, path).await;
+        let (reports, problems, _) = inspect(&pipeline, path, None).await;
         if !problems.is_empty() {
             print_problems(&problems);
             return Ok(exit::INVALID);

@@ -62,7 +62,7 @@ pub async fn labels(args: LabelsArgs) -> Result<u8> {
             args.pipeline.display()
         )));
     };
-    let (reports, problems, _) = inspect(&pipeline, &args.pipeline).await;
+    let (reports, problems, _) = inspect(&pipeline, &args.pipeline, None).await;
     if !problems.is_empty() {
         print_problems(&problems);
         return Ok(exit::INVALID);

@@ -143,8 +143,18 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     let first = build("2026-03-30");
     assert!(first["raw_files"].as_u64().unwrap() > 100, "{first}");
     assert_eq!(first["partitions_reused"], 0);
+    // The first build reads every raw footer (schemas and row counts); later ones take
+    // the footers of unchanged files from the output store's footer cache and read one
+    // footer per source for its schema.
+    let sources = ["plays", "subscriptions", "support"];
+    let all_files: u64 = sources
+        .iter()
+        .map(|s| walk(&world.join(s)).len() as u64)
+        .sum();
+    assert_eq!(first["footers_read"].as_u64(), Some(all_files), "{first}");
+    assert_eq!(first["footers_cached"], 0, "{first}");
     let second = build("2026-03-31");
-    let new_files: u64 = ["plays", "subscriptions", "support"]
+    let new_files: u64 = sources
         .iter()
         .map(|s| {
             let part = world.join(s).join("dt=2026-03-31");
@@ -162,6 +172,16 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
         "{second}"
     );
     assert!(second["partitions_reused"].as_u64().unwrap() > 40);
+    assert_eq!(
+        second["footers_read"].as_u64(),
+        Some(sources.len() as u64),
+        "{second}"
+    );
+    assert_eq!(
+        second["footers_cached"].as_u64(),
+        Some(all_files),
+        "{second}"
+    );
     let snapshot = out_dir.join("snapshots/dt=2026-03-31/part-0.parquet");
     let published = std::fs::read(&snapshot).unwrap();
     // A rerun reads no raw file and publishes the same bytes (float sums are added

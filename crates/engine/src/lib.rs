@@ -30,5 +30,7 @@ pub mod time;
 pub mod window_totals;
 
 pub use check::{check_against_schemas, check_expr, FeatureTypes};
-pub use sources::{inspect_sources, register_sources, schemas_of, SourceReport};
+pub use sources::{
+    inspect_sources, inspect_sources_with, register_sources, schemas_of, SourceReport,
+};
 pub use sql::{snapshot_query, SnapshotQuery};

@@ -8,7 +8,9 @@ use datafusion::datasource::listing::{
 };
 use datafusion::prelude::SessionContext;
 use daymark_spec::{Diagnostic, Pipeline};
-use daymark_store::{list_days, read_shape, resolve, Listing, Location};
+use daymark_store::{
+    list_days, read_shape, read_shape_cached, resolve, FooterCache, FooterReads, Listing, Location,
+};
 use std::collections::{BTreeMap, HashMap};
 use std::sync::Arc;
 
@@ -27,6 +29,8 @@ pub struct SourceReport {
     pub rows: u64,
     /// Problems found reading the source.
     pub problems: Vec<Diagnostic>,
+    /// Parquet footers read from files and taken from the footer cache.
+    pub footer_reads: FooterReads,
 }
 
 impl SourceReport {
@@ -57,6 +61,20 @@ impl SourceReport {
 
 /// Resolves, lists and reads the footers of every source of `pipeline`.
 pub async fn inspect_sources(pipeline: &Pipeline) -> BTreeMap<String, SourceReport> {
+    inspect_sources_with(pipeline, None).await
+}
+
+/// Folder of the output store that holds the footer caches, one JSON file per source.
+pub const FOOTER_CACHE_DIR: &str = "_footers";
+
+/// Like [`inspect_sources`]; with `cache` (the pipeline's output store), footers of files
+/// unchanged since an earlier run come from `_footers/<source>.json` there, and new ones
+/// are added to it (see [`daymark_store::footer_cache`]). Runs use it so that a daily
+/// build does not read the footer of every file of the history.
+pub async fn inspect_sources_with(
+    pipeline: &Pipeline,
+    cache: Option<&Location>,
+) -> BTreeMap<String, SourceReport> {
     let mut out = BTreeMap::new();
     for (name, src) in &pipeline.sources {
         let path = format!("sources.{name}.location");
@@ -67,6 +85,7 @@ pub async fn inspect_sources(pipeline: &Pipeline) -> BTreeMap<String, SourceRepo
             schema: None,
             rows: 0,
             problems: Vec::new(),
+            footer_reads: FooterReads::default(),
         };
         match resolve(&src.spec.location, pipeline.base_dir.as_deref()) {
             Err(e) => report.problems.push(Diagnostic::at(path, e.to_string())),
@@ -86,7 +105,26 @@ pub async fn inspect_sources(pipeline: &Pipeline) -> BTreeMap<String, SourceRepo
                                 ),
                             ));
                         }
-                        let shape = read_shape(&loc, &listing).await;
+                        let shape = match cache {
+                            Some(at) => {
+                                let cache = FooterCache {
+                                    at: at.clone(),
+                                    path: crate::build::child(
+                                        &at.prefix,
+                                        &[FOOTER_CACHE_DIR, &format!("{name}.json")],
+                                    ),
+                                };
+                                let (shape, reads) =
+                                    read_shape_cached(&loc, &listing, &cache).await;
+                                report.footer_reads = reads;
+                                shape
+                            }
+                            None => {
+                                let shape = read_shape(&loc, &listing).await;
+                                report.footer_reads.read = listing.files().count();
+                                shape
+                            }
+                        };
                         report.schema = shape.schema;
                         report.rows = shape.rows;
                         for p in shape.problems {

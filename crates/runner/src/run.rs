@@ -438,7 +438,7 @@ async fn build_days(
     summary: &mut Summary,
 ) -> Result<(), RunnerError> {
     let days = plan.snapshot_days();
-    let reports = daymark_engine::inspect_sources(pipeline).await;
+    let reports = daymark_engine::inspect_sources_with(pipeline, Some(out)).await;
     let mut problems: Vec<String> = reports
         .values()
         .flat_map(|r| r.problems.iter().map(|d| d.to_string()))
@@ -629,7 +629,7 @@ async fn back_fill_labels(
     me: &RunIdentity,
     on: &(dyn Fn(Event) + Sync),
 ) -> Result<(), RunnerError> {
-    let reports = daymark_engine::inspect_sources(pipeline).await;
+    let reports = daymark_engine::inspect_sources_with(pipeline, Some(out)).await;
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit: opts.memory_limit,
         target_partitions: None,

@@ -199,44 +199,64 @@ pub struct SourceShape {
 /// Reads every footer of `listing` (a few at a time) and checks that the schemas agree.
 pub async fn read_shape(loc: &Location, listing: &Listing) -> SourceShape {
     let files: Vec<&DataFile> = listing.files().collect();
-    let footers: Vec<(usize, Result<Footer, DiscoverError>)> =
-        futures::stream::iter(files.iter().enumerate())
-            .map(|(i, f)| async move { (i, read_footer(loc, f).await) })
-            .buffer_unordered(16)
-            .collect()
-            .await;
-    let mut footers = footers;
-    footers.sort_by_key(|(i, _)| *i);
+    let footers = read_footers(loc, &files).await;
     let mut shape = SourceShape {
         schema: None,
         rows: 0,
         problems: Vec::new(),
     };
     let mut first_file = String::new();
-    for (i, r) in footers {
+    fold_footers(&mut shape, &mut first_file, &files, footers);
+    shape
+}
+
+/// Reads the footers of `files`, 16 at a time, returned in the files' order.
+pub(crate) async fn read_footers(
+    loc: &Location,
+    files: &[&DataFile],
+) -> Vec<Result<Footer, DiscoverError>> {
+    futures::stream::iter(files.iter())
+        .map(|f| read_footer(loc, f))
+        .buffered(16)
+        .collect()
+        .await
+}
+
+/// Adds `footers` (of `files`) to `shape`: their rows, and their schemas checked against
+/// the shape's (the first one seen becomes the shape's when it has none; `first_file`
+/// names the file it came from). Returns the files whose footers were read and whose
+/// schema agreed, with their rows.
+pub(crate) fn fold_footers(
+    shape: &mut SourceShape,
+    first_file: &mut String,
+    files: &[&DataFile],
+    footers: Vec<Result<Footer, DiscoverError>>,
+) -> Vec<(usize, u64)> {
+    let mut agreed = Vec::new();
+    for (i, r) in footers.into_iter().enumerate() {
         match r {
             Ok(footer) => {
                 shape.rows += footer.rows;
                 match &shape.schema {
                     None => {
                         shape.schema = Some(footer.schema.clone());
-                        first_file = files[i].path.to_string();
+                        *first_file = files[i].path.to_string();
+                        agreed.push((i, footer.rows));
                     }
-                    Some(s) => {
-                        if let Some(difference) = schema_difference(s, &footer.schema) {
-                            shape.problems.push(DiscoverError::SchemaMismatch {
-                                first: first_file.clone(),
-                                second: files[i].path.to_string(),
-                                difference,
-                            });
-                        }
-                    }
+                    Some(s) => match schema_difference(s, &footer.schema) {
+                        Some(difference) => shape.problems.push(DiscoverError::SchemaMismatch {
+                            first: first_file.clone(),
+                            second: files[i].path.to_string(),
+                            difference,
+                        }),
+                        None => agreed.push((i, footer.rows)),
+                    },
                 }
             }
             Err(e) => shape.problems.push(e),
         }
     }
-    shape
+    agreed
 }
 
 /// Describes how two schemas differ, ignoring nullability and field metadata.
