@@ -207,20 +207,24 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, days: &[NaiveDate]) -> String 
     let deduped = if source.spec.dedupe_on.is_empty() {
         base
     } else {
-        // Rows sorted by partition, de-duplication columns and arrival: a row is a copy
-        // when the row before it has the same de-duplication values. (Partitioning the
-        // window by the de-duplication columns instead, as the naive path does, makes
-        // nearly every row its own window partition, and DataFusion's per-partition
-        // bookkeeping cost about half of the tile build: measured, docs/benchmarks.md.)
-        let part: Vec<String> = source.spec.dedupe_on.iter().map(|c| ident(c)).collect();
+        // Rows sorted by partition, key, de-duplication columns and arrival: a row is a
+        // copy when the row before it has the same key and de-duplication values (copies
+        // share their key, as they share their event time). (Partitioning the window by
+        // the de-duplication columns instead, as the naive path does, makes nearly every
+        // row its own window partition, and DataFusion's per-partition bookkeeping cost
+        // about half of the tile build: measured, docs/benchmarks.md.) Sorting by key
+        // first leaves the rows in the order the tile is written in, so the grouping
+        // after it streams and no second sort is needed.
+        let mut same = vec!["__key".to_string()];
+        same.extend(source.spec.dedupe_on.iter().map(|c| ident(c)));
         let order = arr.clone().unwrap_or_else(|| ev.clone());
         let over = format!(
             "OVER (PARTITION BY __part ORDER BY {}, {order})",
-            part.join(", ")
+            same.join(", ")
         );
-        let same: Vec<String> = part
+        let same: Vec<String> = same
             .iter()
-            .map(|c| format!("lag({c}) {over} IS NOT DISTINCT FROM {c}"))
+            .map(|c| format!("(lag({c}) {over} IS NOT DISTINCT FROM {c})"))
             .collect();
         format!(
             "SELECT * FROM (SELECT *, lag(TRUE) {over} IS NULL OR NOT ({}) AS __first_copy FROM ({base})) WHERE __first_copy",
@@ -292,6 +296,11 @@ pub fn distinct_sql(
 /// file being written is dropped; files already published are whole (their fingerprints
 /// are not written yet, so they are rebuilt next time). Returns, per day, the [`Ignored`]
 /// rows the written rows count (zero where the rows have no `__key`, `__rows`, `__ahead`).
+///
+/// When the plan's parallel streams each hold whole partitions (hash-partitioned on
+/// `__part`, each sorted), they are written side by side instead of merged into one
+/// stream first: the merge would let only one of them run at a time, and one writer
+/// would encode every file.
 pub(crate) async fn write_split(
     ctx: &SessionContext,
     sql: &str,
@@ -299,52 +308,189 @@ pub(crate) async fn write_split(
     dir: &StorePath,
     days: &[NaiveDate],
 ) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
-    use datafusion::arrow::array::{Array, AsArray};
-    use datafusion::arrow::datatypes::Int64Type;
-    use futures::StreamExt;
     let first = days[0];
     let engine = |source| BuildError::Engine { day: first, source };
-    let df = ctx.sql(sql).await.map_err(engine)?;
-    let mut stream = df.execute_stream().await.map_err(engine)?;
-    let full = stream.schema();
+    // Plans keep an existing hash partitioning whenever it is on a subset of the columns
+    // an operator needs (DataFusion does so only from 4 partitions on, by default): a tile
+    // query's de-duplication already partitions its rows by raw partition, so the grouping
+    // by (partition, key, days) after it needs no second shuffle and streams in the
+    // de-duplication's order (measured in docs/benchmarks.md). Set on a copy of the
+    // session's state, for this query only.
+    let mut state = ctx.state();
+    state
+        .config_mut()
+        .options_mut()
+        .optimizer
+        .subset_repartition_threshold = 1;
+    let logical = state.create_logical_plan(sql).await.map_err(engine)?;
+    let plan = state.create_physical_plan(&logical).await.map_err(engine)?;
+    let task = state.task_ctx();
+    let full = plan.schema();
     let keep: Vec<usize> = (1..full.fields().len()).collect();
     let schema = Arc::new(full.project(&keep).map_err(|e| engine(e.into()))?);
-    let path = |d: NaiveDate| child(dir, &[&format!("dt={d}"), "part-0.parquet"]);
-    let mut pending: BTreeSet<NaiveDate> = days.iter().copied().collect();
+    let streams = match whole_partitions_per_stream(&plan) {
+        Some(input) => (0
+            ..datafusion::physical_plan::ExecutionPlanProperties::output_partitioning(&input)
+                .partition_count())
+            .map(|i| input.execute(i, task.clone()))
+            .collect::<datafusion::error::Result<Vec<_>>>(),
+        None => datafusion::physical_plan::execute_stream(plan, task).map(|s| vec![s]),
+    }
+    .map_err(engine)?;
+    let allowed: Arc<BTreeSet<NaiveDate>> = Arc::new(days.iter().copied().collect());
+    let tasks: Vec<_> = streams
+        .into_iter()
+        .map(|stream| {
+            let split = Split {
+                keep: keep.clone(),
+                schema: schema.clone(),
+                out: out.clone(),
+                dir: dir.clone(),
+                allowed: allowed.clone(),
+                first,
+            };
+            tokio::spawn(split.write(stream))
+        })
+        .collect();
     let mut ignored: BTreeMap<NaiveDate, Ignored> =
         days.iter().map(|d| (*d, Ignored::default())).collect();
-    let counted = ["__key", "__rows", "__ahead"].map(|c| schema.index_of(c).ok());
-    let mut current: Option<crate::build::DayWriter> = None;
-    let streamed: Result<(), BuildError> = async {
+    let mut pending: BTreeSet<NaiveDate> = allowed.as_ref().clone();
+    let mut failed = None;
+    for t in tasks {
+        let written = t.await.unwrap_or_else(|e| {
+            Err(engine(datafusion::error::DataFusionError::External(
+                Box::new(e),
+            )))
+        });
+        match written {
+            Ok(per_day) => {
+                for (day, n) in per_day {
+                    if !pending.remove(&day) {
+                        failed.get_or_insert(engine(datafusion::error::DataFusionError::Internal(
+                            format!("tile rows of partition {day} came in two streams"),
+                        )));
+                    }
+                    ignored.insert(day, n);
+                }
+            }
+            Err(e) => {
+                failed.get_or_insert(e);
+            }
+        }
+    }
+    if let Some(e) = failed {
+        return Err(e);
+    }
+    let path = |d: NaiveDate| child(dir, &[&format!("dt={d}"), "part-0.parquet"]);
+    for day in pending {
+        crate::build::DayWriter::direct(
+            out,
+            path(day),
+            day,
+            schema.clone(),
+            crate::build::tile_writer_properties(),
+        )?
+        .finish(None)
+        .await?;
+    }
+    Ok(ignored)
+}
+
+/// The input of `plan`'s final merge when each of its streams holds whole `__part`
+/// partitions (hash-partitioned on the first column, which is `__part`) in order.
+fn whole_partitions_per_stream(
+    plan: &Arc<dyn datafusion::physical_plan::ExecutionPlan>,
+) -> Option<Arc<dyn datafusion::physical_plan::ExecutionPlan>> {
+    use datafusion::physical_expr::expressions::Column;
+    use datafusion::physical_plan::sorts::sort_preserving_merge::SortPreservingMergeExec;
+    use datafusion::physical_plan::{ExecutionPlanProperties, Partitioning};
+    let merge = plan.downcast_ref::<SortPreservingMergeExec>()?;
+    let first_sort = merge.expr().first().expr.clone();
+    let on_part = |e: &Arc<dyn datafusion::physical_expr::PhysicalExpr>| {
+        e.downcast_ref::<Column>().is_some_and(|c| c.index() == 0)
+    };
+    match merge.input().output_partitioning() {
+        Partitioning::Hash(exprs, _) if exprs.len() == 1 && on_part(&exprs[0]) => {
+            on_part(&first_sort).then(|| merge.input().clone())
+        }
+        _ => None,
+    }
+}
+
+/// One stream of [`write_split`]: its rows, split into day files as they come.
+struct Split {
+    keep: Vec<usize>,
+    schema: datafusion::arrow::datatypes::SchemaRef,
+    out: Location,
+    dir: StorePath,
+    allowed: Arc<BTreeSet<NaiveDate>>,
+    first: NaiveDate,
+}
+
+impl Split {
+    /// Writes the stream's days; returns each day written with its [`Ignored`] rows.
+    async fn write(
+        self,
+        mut stream: datafusion::execution::SendableRecordBatchStream,
+    ) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
+        let mut current: Option<crate::build::DayWriter> = None;
+        let mut done = BTreeMap::new();
+        let streamed = self.stream_into(&mut stream, &mut current, &mut done).await;
+        if let Err(e) = streamed {
+            if let Some(w) = current.take() {
+                w.abandon().await;
+            }
+            return Err(e);
+        }
+        if let Some(w) = current.take() {
+            w.finish(None).await?;
+        }
+        Ok(done)
+    }
+
+    async fn stream_into(
+        &self,
+        stream: &mut datafusion::execution::SendableRecordBatchStream,
+        current: &mut Option<crate::build::DayWriter>,
+        done: &mut BTreeMap<NaiveDate, Ignored>,
+    ) -> Result<(), BuildError> {
+        use datafusion::arrow::array::{Array, AsArray};
+        use datafusion::arrow::datatypes::Int64Type;
+        use futures::StreamExt;
+        let engine = |source| BuildError::Engine {
+            day: self.first,
+            source,
+        };
+        let internal = |text: String| engine(datafusion::error::DataFusionError::Internal(text));
+        let counted = ["__key", "__rows", "__ahead"].map(|c| self.schema.index_of(c).ok());
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine)?;
             let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Utf8)
                 .map_err(|e| engine(e.into()))?;
             let parts = parts.as_string::<i32>();
-            let body = batch.project(&keep).map_err(|e| engine(e.into()))?;
+            let body = batch.project(&self.keep).map_err(|e| engine(e.into()))?;
             for run in
                 crate::build::equal_runs(batch.num_rows(), |a, b| parts.value(a) == parts.value(b))
             {
                 let text = parts.value(run.start);
-                let day: NaiveDate = text.parse().map_err(|_| {
-                    engine(datafusion::error::DataFusionError::Internal(format!(
-                        "tile partition {text:?} is not a date"
-                    )))
-                })?;
+                let day: NaiveDate = text
+                    .parse()
+                    .map_err(|_| internal(format!("tile partition {text:?} is not a date")))?;
                 if current.as_ref().map(|w| w.day()) != Some(day) {
                     if let Some(w) = current.take() {
                         w.finish(None).await?;
                     }
-                    if !pending.remove(&day) {
-                        return Err(engine(datafusion::error::DataFusionError::Internal(
-                            format!("tile rows of partition {day} arrived out of order"),
+                    if !self.allowed.contains(&day) || done.contains_key(&day) {
+                        return Err(internal(format!(
+                            "tile rows of partition {day} arrived out of order"
                         )));
                     }
-                    current = Some(crate::build::DayWriter::direct(
-                        out,
-                        path(day),
+                    done.insert(day, Ignored::default());
+                    *current = Some(crate::build::DayWriter::direct(
+                        &self.out,
+                        child(&self.dir, &[&format!("dt={day}"), "part-0.parquet"]),
                         day,
-                        schema.clone(),
+                        self.schema.clone(),
                         crate::build::tile_writer_properties(),
                     )?);
                 }
@@ -354,7 +500,7 @@ pub(crate) async fn write_split(
                         rows.as_primitive_opt::<Int64Type>(),
                         ahead.as_primitive_opt::<Int64Type>(),
                     ) {
-                        let n = ignored.entry(day).or_default();
+                        let n = done.entry(day).or_default();
                         for i in run.clone() {
                             if key.is_null(i) {
                                 n.null_key_rows += rows.value(i) as u64;
@@ -370,28 +516,6 @@ pub(crate) async fn write_split(
         }
         Ok(())
     }
-    .await;
-    if let Err(e) = streamed {
-        if let Some(w) = current.take() {
-            w.abandon().await;
-        }
-        return Err(e);
-    }
-    if let Some(w) = current.take() {
-        w.finish(None).await?;
-    }
-    for day in pending {
-        crate::build::DayWriter::direct(
-            out,
-            path(day),
-            day,
-            schema.clone(),
-            crate::build::tile_writer_properties(),
-        )?
-        .finish(None)
-        .await?;
-    }
-    Ok(ignored)
 }
 
 /// Raw rows of a partition that no snapshot uses (a null key) or that look wrong (event
