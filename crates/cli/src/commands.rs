@@ -140,14 +140,10 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         print_problems(&problems);
         return Ok(exit::INVALID);
     }
-    let footers = reports
-        .values()
-        .fold(daymark_store::FooterReads::default(), |a, r| {
-            daymark_store::FooterReads {
-                read: a.read + r.footer_reads.read,
-                cached: a.cached + r.footer_reads.cached,
-            }
-        });
+    let mut footers = daymark_store::FooterReads::default();
+    for r in reports.values() {
+        footers.add(&r.footer_reads);
+    }
     // Every partition a window needs must exist (or carry a completeness marker).
     let mut missing: BTreeMap<String, Vec<NaiveDate>> = BTreeMap::new();
     for day in &days {

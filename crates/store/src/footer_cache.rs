@@ -76,6 +76,14 @@ pub struct FooterReads {
     pub cached: usize,
 }
 
+impl FooterReads {
+    /// Adds `other`'s counts (of another source).
+    pub fn add(&mut self, other: &FooterReads) {
+        self.read += other.read;
+        self.cached += other.cached;
+    }
+}
+
 /// Like [`crate::read_shape`], but takes the footers of unchanged files from `cache` and
 /// remembers the new ones there. Problems reading or writing the cache itself are not
 /// errors: the footers are then read from the files, as without a cache.
