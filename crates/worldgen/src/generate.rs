@@ -590,6 +590,7 @@ fn deliver(
     rows: &mut Vec<Row>,
     from: usize,
     counts: &mut [SourceCounts; 3],
+    copies: &mut std::collections::HashSet<usize>,
 ) {
     let mut r = Stream::new(ctx.cfg.seed, &[3, c.index as u64, day as u64]);
     let end = rows.len();
@@ -627,6 +628,7 @@ fn deliver(
             let mut copy = rows[i].clone();
             let (_, arrived) = copy.times();
             copy.set_arrived(arrived + r.below(3 * 3600 * MICROS_PER_SEC as u64) as i64);
+            copies.insert(rows.len());
             rows.push(copy);
         }
     }
@@ -636,18 +638,21 @@ fn run_day(ctx: &Ctx, day: i32) -> Result<(), GenerateError> {
     let mut writers: BTreeMap<(usize, i64, i64), (PathBuf, ArrowWriter<File>)> = BTreeMap::new();
     let mut counts: [SourceCounts; 3] = Default::default();
     let mut rows = Vec::new();
+    // Indices (in `rows`) of the extra copies `deliver` added.
+    let mut copies = std::collections::HashSet::new();
     for chunk in ctx.customers.chunks(CHUNK) {
         rows.clear();
+        copies.clear();
         for c in chunk {
             let from = rows.len();
             draw_rows(ctx, c, day, &mut rows);
             if rows.len() > from {
-                deliver(ctx, c, day, &mut rows, from, &mut counts);
+                deliver(ctx, c, day, &mut rows, from, &mut counts, &mut copies);
             }
         }
         // Group by (source, UTC event day, UTC arrival day); drop what has not happened yet.
         let mut groups: BTreeMap<(usize, i64, i64), Vec<&Row>> = BTreeMap::new();
-        for row in &rows {
+        for (i, row) in rows.iter().enumerate() {
             let (event, arrived) = row.times();
             let future_fault = event >= ctx.now_utc + 365 * MICROS_PER_DAY;
             if (event >= ctx.now_utc && !future_fault) || arrived >= ctx.now_utc {
@@ -657,6 +662,9 @@ fn run_day(ctx: &Ctx, day: i32) -> Result<(), GenerateError> {
                 continue;
             }
             // A planted future timestamp is filed where it arrived, as a broken clock would.
+            if copies.contains(&i) {
+                counts[row.source()].duplicate_rows += 1;
+            }
             let part_time = if future_fault { arrived } else { event };
             groups
                 .entry((
@@ -727,8 +735,7 @@ fn run_day(ctx: &Ctx, day: i32) -> Result<(), GenerateError> {
             source: err,
         })?;
     }
-    // Duplicates are counted from the rows written, by identity, in the tests; here we
-    // count re-deliveries that survived the cut at "now".
+    // Copies are counted when written (a re-delivery after "now" is not).
     let mut total = ctx
         .counts
         .lock()
@@ -736,6 +743,7 @@ fn run_day(ctx: &Ctx, day: i32) -> Result<(), GenerateError> {
     for i in 0..3 {
         total[i].rows += counts[i].rows;
         total[i].late_rows += counts[i].late_rows;
+        total[i].duplicate_rows += counts[i].duplicate_rows;
         total[i].null_key_rows += counts[i].null_key_rows;
         total[i].negative_duration_rows += counts[i].negative_duration_rows;
         total[i].future_time_rows += counts[i].future_time_rows;

@@ -122,7 +122,7 @@ fn scan(dir: &Path, id_col: &str, time_col: &str, now_micros: i64) -> Rows {
 fn fault_rates_match_the_documented_shares() {
     let dir = tempfile::tempdir().unwrap();
     let cfg = small(dir.path(), 5);
-    generate(&cfg).unwrap();
+    let summary = generate(&cfg).unwrap();
     let now = (cfg.start + chrono::Duration::days(cfg.days as i64))
         .and_hms_opt(0, 0, 0)
         .unwrap()
@@ -130,6 +130,12 @@ fn fault_rates_match_the_documented_shares() {
         .timestamp_micros();
     let plays = scan(&dir.path().join("plays"), "event_id", "event_time", now);
     assert!(plays.total > 50_000, "{} plays", plays.total);
+    // The summary's counts are those of the files as read back.
+    let counted = &summary.sources["plays"];
+    assert_eq!(
+        (counted.rows, counted.late_rows, counted.duplicate_rows),
+        (plays.total as u64, plays.late as u64, plays.copies as u64)
+    );
     let late = plays.late as f64 / plays.total as f64;
     // 2% are drawn late; those whose arrival falls after the world's end are not written
     // yet, which removes a few percent of them.
