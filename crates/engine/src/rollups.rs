@@ -455,6 +455,20 @@ fn in_list<T: ToString>(items: impl IntoIterator<Item = T>) -> String {
         .join(", ")
 }
 
+/// How many of `stale` spans one roll-up query builds: all of them, or one at a time under
+/// a memory limit. One query over a year of weeks groups and sorts every (week, key) and,
+/// under a limit, spills and merges hundreds of runs: a year of roll-ups of the 100M-event
+/// world at 300 MiB took 224 s and peaked at 571 MiB that way, 121 s and 469 MiB one span
+/// per query. Without a limit one query is twice as fast (10M-event world: 9-10 s against
+/// 18-20 s). Measured in docs/benchmarks.md, ninth measurement.
+fn spans_per_query(ctx: &SessionContext, stale: usize) -> usize {
+    use datafusion::execution::memory_pool::MemoryLimit;
+    match ctx.runtime_env().memory_pool.memory_limit() {
+        MemoryLimit::Finite(_) => 1,
+        _ => stale.max(1),
+    }
+}
+
 /// Builds the roll-ups of `spans` (all of one level) from the tiles (which must be current
 /// and registered), with their distinct-value roll-ups, then writes their markers.
 #[allow(clippy::too_many_arguments)]
@@ -478,14 +492,18 @@ async fn build(
         .flat_map(|s| span_partitions(report, *s))
         .collect();
     let firsts: Vec<NaiveDate> = spans.iter().map(|s| s.first).collect();
-    // Tile rows of the partitions the spans cover whose event day lies in one of them.
+    // Tile rows of the partitions the spans cover whose event day lies in one of them (none
+    // when the spans cover no partition: a week without events gets an empty roll-up).
+    let in_parts = match parts.is_empty() {
+        true => "FALSE".to_string(),
+        false => format!("dt IN ({})", in_list(&parts)),
+    };
     let rows =
         |table: &str| {
             format!(
-            "SELECT * FROM (SELECT *, {} AS __part FROM {} WHERE dt IN ({})) WHERE __part IN ({})",
+            "SELECT * FROM (SELECT *, {} AS __part FROM {} WHERE {in_parts}) WHERE __part IN ({})",
             span_of(level, "__t"),
             ident(table),
-            in_list(&parts),
             firsts.iter().map(|d| date(*d)).collect::<Vec<_>>().join(", ")
         )
         };
@@ -727,10 +745,13 @@ pub async fn plan_day(
                         registered = true;
                     }
                     let floats = float_sums(ctx, layout).await;
-                    let built =
-                        build(ctx, pipeline, report, layout, out, level, &stale, &floats).await?;
-                    stats.rollups_built += built.len() as u64;
-                    found.extend(built);
+                    for spans in stale.chunks(spans_per_query(ctx, stale.len())) {
+                        let built =
+                            build(ctx, pipeline, report, layout, out, level, spans, &floats)
+                                .await?;
+                        stats.rollups_built += built.len() as u64;
+                        found.extend(built);
+                    }
                 }
                 for span in spans {
                     // An as-known snapshot may use a span only if all its rows had arrived.

@@ -73,7 +73,7 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
         // and spill, where the default greedy pool let the first sort take it all and the
         // second fail (measured on the 10M-event benchmark world at 128 MiB).
         let pool = datafusion::execution::memory_pool::FairSpillPool::new(limit);
-        runtime = runtime.with_memory_pool(Arc::new(RepartitionGranted(Arc::new(
+        runtime = runtime.with_memory_pool(Arc::new(AlwaysGranted(Arc::new(
             datafusion::execution::memory_pool::TrackConsumersPool::new(
                 pool,
                 std::num::NonZeroUsize::new(5).expect("5 is not zero"),
@@ -86,25 +86,38 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     Ok(ctx)
 }
 
-/// A memory pool that always grants DataFusion's repartition buffers (they are counted,
-/// so the other operators' fair shares shrink, but never refused).
+/// A memory pool that grants two kinds of DataFusion reservations beyond the limit
+/// (they are counted, so the other operators' fair shares shrink):
 ///
-/// DataFusion 55 writes a refused repartition batch to a spill pool shared by the input
-/// tasks, whose reader waits on the oldest file only: when two tasks spill at once the
-/// query can stop for good with every thread parked (apache/datafusion#24883, fixed
-/// upstream by #24891, not in 55.2). Measured here: a `--memory-limit 300MiB` backfill of
-/// the 100M-event benchmark world stopped that way after its tiles. Repartition buffers
-/// hold batches in flight between operators, a few per partition.
+/// - Repartition buffers, always. DataFusion 55 writes a refused repartition batch to a
+///   spill pool shared by the input tasks, whose reader waits on the oldest file only:
+///   when two tasks spill at once the query can stop for good with every thread parked
+///   (apache/datafusion#24883, fixed upstream by #24891, not in 55.2). Measured here: a
+///   `--memory-limit 300MiB` backfill of the 100M-event benchmark world stopped that way
+///   after its tiles. Repartition buffers hold batches in flight between operators, a
+///   few per partition.
+/// - A sort's merge of its sorted runs, which cannot spill, up to a sixteenth of the
+///   limit per sort ([`MERGE_OVERDRAFT_PARTS`]). Under the fair pool the spilling
+///   consumers of a plan may take every byte the limit has left, and the merge then
+///   failed the whole query (measured: the roll-ups of a `--memory-limit 40MiB` backfill
+///   of the 10M-event world, two sorts and two aggregations at their fair shares of 9 MB
+///   each). Only up to a bound: DataFusion sizes the merge of spilled runs by how much it
+///   is granted (one batch per run), and granting all of it merged 500 runs at once on
+///   the 100M-event world at 300 MiB (docs/benchmarks.md, ninth measurement).
 #[derive(Debug)]
-struct RepartitionGranted(Arc<dyn MemoryPool>);
+struct AlwaysGranted(Arc<dyn MemoryPool>);
 
-impl std::fmt::Display for RepartitionGranted {
+/// A sort's merge may hold up to `limit / MERGE_OVERDRAFT_PARTS` beyond the limit (see
+/// [`AlwaysGranted`]).
+const MERGE_OVERDRAFT_PARTS: usize = 16;
+
+impl std::fmt::Display for AlwaysGranted {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         self.0.fmt(f)
     }
 }
 
-impl MemoryPool for RepartitionGranted {
+impl MemoryPool for AlwaysGranted {
     fn name(&self) -> &str {
         self.0.name()
     }
@@ -126,15 +139,25 @@ impl MemoryPool for RepartitionGranted {
     }
 
     fn try_grow(&self, reservation: &MemoryReservation, additional: usize) -> Result<()> {
-        if reservation
-            .consumer()
-            .name()
-            .starts_with("RepartitionExec[")
+        let name = reservation.consumer().name();
+        if name.starts_with("RepartitionExec[") {
+            self.0.grow(reservation, additional);
+            return Ok(());
+        }
+        let refused = match self.0.try_grow(reservation, additional) {
+            Ok(()) => return Ok(()),
+            Err(e) => e,
+        };
+        let overdraft = match self.0.memory_limit() {
+            MemoryLimit::Finite(limit) => limit / MERGE_OVERDRAFT_PARTS,
+            _ => 0,
+        };
+        if name.starts_with("ExternalSorterMerge[") && reservation.size() + additional <= overdraft
         {
             self.0.grow(reservation, additional);
             Ok(())
         } else {
-            self.0.try_grow(reservation, additional)
+            Err(refused)
         }
     }
 
