@@ -1210,6 +1210,7 @@ impl KeyRangeMerge {
             inner.finish()?;
             files.push(file);
             indexes.push(days);
+            crate::session::release_free_memory();
         }
         let schema = schema.ok_or_else(|| {
             datafusion::error::DataFusionError::Internal("no key range to run".into())

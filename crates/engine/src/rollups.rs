@@ -751,6 +751,7 @@ pub async fn plan_day(
                                 .await?;
                         stats.rollups_built += built.len() as u64;
                         found.extend(built);
+                        crate::session::release_free_memory();
                     }
                 }
                 for span in spans {

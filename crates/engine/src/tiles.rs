@@ -808,6 +808,7 @@ pub async fn ensure_tiles(
             )
             .await?;
         }
+        crate::session::release_free_memory();
         // Markers are written last (a crash before one leaves its tile to be rebuilt), many
         // at once: each is a small object, and one at a time they took ~4 ms each, seconds
         // for a backfill over a thousand small partitions.
