@@ -59,6 +59,7 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     if let Some(n) = opts.backfill_rows_per_query {
         config = config.with_extension(Arc::new(BackfillRowsPerQuery(n.max(1))));
     }
+    let (pool_limit, metadata_cache) = split_limit(opts.memory_limit);
     let mut runtime = RuntimeEnvBuilder::new()
         .with_disk_manager_builder(DiskManagerBuilder::default())
         // No cache of folder listings: a session writes tiles and roll-ups and then
@@ -66,9 +67,10 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
         // files from a table registered again over the same folder.
         .with_cache_manager(
             datafusion::execution::cache::cache_manager::CacheManagerConfig::default()
-                .with_list_files_cache_limit(0),
+                .with_list_files_cache_limit(0)
+                .with_metadata_cache_limit(metadata_cache),
         );
-    if let Some(limit) = opts.memory_limit {
+    if let Some(limit) = pool_limit {
         // A fair pool: several sorts and aggregations of one plan share the limit evenly
         // and spill, where the default greedy pool let the first sort take it all and the
         // second fail (measured on the 10M-event benchmark world at 128 MiB).
@@ -85,6 +87,23 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     crate::window_totals::register(&ctx);
     Ok(ctx)
 }
+
+/// DataFusion's cache of Parquet footers (its default, 50 MB) sits outside the memory
+/// pool; under a limit it gets a sixteenth of the limit and the pool the rest, so that
+/// the two together stay within what the user allowed. Returns (pool, cache) sizes.
+fn split_limit(limit: Option<usize>) -> (Option<usize>, usize) {
+    use datafusion::execution::cache::cache_manager::DEFAULT_METADATA_CACHE_LIMIT;
+    match limit {
+        Some(limit) => {
+            let cache = (limit / METADATA_CACHE_PARTS).min(DEFAULT_METADATA_CACHE_LIMIT);
+            (Some(limit - cache), cache)
+        }
+        None => (None, DEFAULT_METADATA_CACHE_LIMIT),
+    }
+}
+
+/// The footer cache's share of a memory limit (see [`split_limit`]).
+const METADATA_CACHE_PARTS: usize = 16;
 
 /// A memory pool that grants two kinds of DataFusion reservations beyond the limit
 /// (they are counted, so the other operators' fair shares shrink):
@@ -217,7 +236,19 @@ pub fn parse_size(text: &str) -> std::result::Result<usize, String> {
 
 #[cfg(test)]
 mod tests {
-    use super::parse_size;
+    use super::{parse_size, split_limit};
+
+    #[test]
+    fn limit_covers_pool_and_footer_cache() {
+        let (pool, cache) = split_limit(Some(300 << 20));
+        assert_eq!(pool.unwrap() + cache, 300 << 20);
+        assert_eq!(cache, (300 << 20) / 16);
+        // Large limits: DataFusion's own default cache size, the rest to the pool.
+        let (pool, cache) = split_limit(Some(8 << 30));
+        assert_eq!(cache, 50 * 1024 * 1024);
+        assert_eq!(pool.unwrap(), (8 << 30) - cache);
+        assert_eq!(split_limit(None), (None, 50 * 1024 * 1024));
+    }
 
     #[test]
     fn sizes() {
