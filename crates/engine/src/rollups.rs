@@ -99,6 +99,15 @@ pub struct Pieces {
     /// order parallel aggregation merges partial sums in (a rerun publishes an identical
     /// file).
     pub float_sums: BTreeSet<String>,
+    /// Whether the pieces read tables over only their own partitions, registered by
+    /// [`plan_day`] under [`scoped_table`] names, rather than the whole tile folders.
+    pub scoped: bool,
+}
+
+/// The name under which [`plan_day`] registers `table` over only the partitions snapshot
+/// `day` reads.
+pub fn scoped_table(table: &str, day: NaiveDate) -> String {
+    format!("{table}@{day}")
 }
 
 /// `SUM(column)` of a floating-point column, added exactly: each value is rounded to
@@ -811,6 +820,8 @@ pub async fn plan_day(
                 register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
             }
         }
+        register_scoped(ctx, pipeline, out, layout, &pieces, day).await?;
+        pieces.scoped = true;
         let mut ignored = Ignored::default();
         for (_, n) in checked.range(read.first_day.unwrap_or(NaiveDate::MIN)..=day) {
             ignored.add(n);
@@ -822,28 +833,36 @@ pub async fn plan_day(
     Ok((all_stats, plan))
 }
 
-/// The partitions day pieces read and the SQL conditions selecting their tile rows.
-fn day_conditions(pieces: &Pieces, day: NaiveDate, knowledge: Knowledge) -> Vec<String> {
-    let partitions: BTreeSet<NaiveDate> = pieces
+/// The tile partitions day pieces read: a row of event day `d` sits in the partitions of
+/// `d - 1`, `d` and `d + 1`.
+fn day_partitions(pieces: &Pieces) -> BTreeSet<NaiveDate> {
+    pieces
         .days
         .iter()
         .flat_map(|d| [*d - Duration::days(1), *d, *d + Duration::days(1)])
-        .collect();
+        .collect()
+}
+
+/// The SQL conditions selecting the tile rows of day pieces (the partition condition only
+/// where the table is the whole folder).
+fn day_conditions(pieces: &Pieces, day: NaiveDate, knowledge: Knowledge) -> Vec<String> {
     let mut conds = if pieces.days.is_empty() {
         vec!["FALSE".to_string()]
     } else {
-        vec![
-            format!("dt IN ({})", in_list(&partitions)),
-            format!(
-                "__t IN ({})",
-                pieces
-                    .days
-                    .iter()
-                    .map(|d| date(*d))
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            ),
-        ]
+        let mut conds = Vec::new();
+        if !pieces.scoped {
+            conds.push(format!("dt IN ({})", in_list(day_partitions(pieces))));
+        }
+        conds.push(format!(
+            "__t IN ({})",
+            pieces
+                .days
+                .iter()
+                .map(|d| date(*d))
+                .collect::<Vec<_>>()
+                .join(", ")
+        ));
+        conds
     };
     if knowledge == Knowledge::AsKnown {
         conds.push(format!("__a <= {}", date(day - Duration::days(1))));
@@ -885,18 +904,18 @@ pub fn pieces_sql(
         parts.push(format!(
             "SELECT __key, __t AS __lo, {} FROM {} WHERE {} GROUP BY __key, __t",
             aggs.join(", "),
-            ident(&layout.table()),
+            ident(&days_table(pieces, &layout.table(), day)),
             conds.join(" AND ")
         ));
     }
     for level in [Level::Month, Level::Week] {
         let firsts = spans_of(pieces, level);
         if !firsts.is_empty() {
+            let (name, cond) = spans_table(pieces, &table(layout, level), &firsts, day);
             parts.push(format!(
-                "SELECT __key, __lo, {} FROM {} WHERE {keyed} AND dt IN ({})",
+                "SELECT __key, __lo, {} FROM {} WHERE {keyed}{cond}",
                 names.join(", "),
-                ident(&table(layout, level)),
-                in_list(&firsts)
+                ident(&name),
             ));
         }
     }
@@ -916,21 +935,109 @@ pub fn distinct_pieces_sql(
     if !pieces.days.is_empty() || pieces.spans.is_empty() {
         parts.push(format!(
             "SELECT __key, __t AS __lo, __v FROM {} WHERE {}",
-            ident(&layout.distinct_table(feature)),
+            ident(&days_table(pieces, &layout.distinct_table(feature), day)),
             day_conditions(pieces, day, knowledge).join(" AND ")
         ));
     }
     for level in [Level::Month, Level::Week] {
         let firsts = spans_of(pieces, level);
         if !firsts.is_empty() {
+            let (name, cond) = spans_table(
+                pieces,
+                &distinct_table(layout, feature, level),
+                &firsts,
+                day,
+            );
             parts.push(format!(
-                "SELECT __key, __lo, __v FROM {} WHERE dt IN ({})",
-                ident(&distinct_table(layout, feature, level)),
-                in_list(&firsts)
+                "SELECT __key, __lo, __v FROM {} WHERE TRUE{cond}",
+                ident(&name),
             ));
         }
     }
     parts.join(" UNION ALL ")
+}
+
+/// The table day pieces read their tile rows from: the folder's, or the one over only
+/// their partitions (none when there are no day pieces: the query reads nothing from it).
+fn days_table(pieces: &Pieces, table: &str, day: NaiveDate) -> String {
+    if pieces.scoped && !pieces.days.is_empty() {
+        scoped_table(table, day)
+    } else {
+        table.to_string()
+    }
+}
+
+/// The roll-up table spans starting on `firsts` read from, and the condition (after an
+/// `AND`) that selects them there.
+fn spans_table(
+    pieces: &Pieces,
+    table: &str,
+    firsts: &[NaiveDate],
+    day: NaiveDate,
+) -> (String, String) {
+    if pieces.scoped {
+        (scoped_table(table, day), String::new())
+    } else {
+        (
+            table.to_string(),
+            format!(" AND dt IN ({})", in_list(firsts)),
+        )
+    }
+}
+
+/// Registers the tables over only the partitions `pieces` read ([`scoped_table`]): the day
+/// tiles of their day pieces and the roll-ups of their spans, main and distinct-value.
+async fn register_scoped(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    out: &Location,
+    layout: &TileLayout,
+    pieces: &Pieces,
+    day: NaiveDate,
+) -> Result<(), BuildError> {
+    let mut tables = Vec::new();
+    let days = day_partitions(pieces);
+    if !days.is_empty() {
+        tables.push((layout.dir(out), layout.table(), days.clone()));
+        for (i, _, _) in &layout.distinct {
+            tables.push((
+                layout.distinct_dir(out, *i),
+                layout.distinct_table(*i),
+                days.clone(),
+            ));
+        }
+    }
+    for level in [Level::Month, Level::Week] {
+        let firsts: BTreeSet<NaiveDate> = spans_of(pieces, level).into_iter().collect();
+        if firsts.is_empty() {
+            continue;
+        }
+        tables.push((
+            dir(layout, pipeline, out, level),
+            table(layout, level),
+            firsts.clone(),
+        ));
+        for (i, _, _) in &layout.distinct {
+            tables.push((
+                distinct_dir(layout, out, *i, level),
+                distinct_table(layout, *i, level),
+                firsts.clone(),
+            ));
+        }
+    }
+    for (folder, name, parts) in tables {
+        crate::tiles::register_partitions(
+            ctx,
+            out,
+            &folder,
+            &name,
+            &scoped_table(&name, day),
+            &parts,
+        )
+        .await
+        .map_err(|source| BuildError::Engine { day, source })?;
+    }
+    Ok(())
 }
 
 #[cfg(test)]

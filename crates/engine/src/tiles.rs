@@ -855,13 +855,7 @@ pub async fn register_tiles(
     dir: &StorePath,
     table: &str,
 ) -> datafusion::error::Result<()> {
-    let mut url = out.root_url.to_string();
-    if !url.ends_with('/') {
-        url.push('/');
-    }
-    url.push_str(dir.as_ref());
-    url.push('/');
-    let url = ListingTableUrl::parse(url)?;
+    let url = ListingTableUrl::parse(format!("{}{}/", root_url(out), dir.as_ref()))?;
     let options = ListingOptions::new(Arc::new(
         ParquetFormat::default().with_force_view_types(false),
     ))
@@ -887,13 +881,96 @@ pub async fn register_tiles(
                     .collect::<Vec<_>>(),
             ))
         }
-        _ => options.infer_schema(&ctx.state(), &url).await?,
+        _ => match newest_file(out, dir).await? {
+            // All files of a tile folder have its layout's schema: one footer tells it,
+            // where inferring from the folder read every file's (1,340 footers for the
+            // benchmark world's daily build, a number that grows with the history).
+            Some(file) => {
+                let file_url = ListingTableUrl::parse(format!("{}{}", root_url(out), file))?;
+                options.infer_schema(&ctx.state(), &file_url).await?
+            }
+            None => options.infer_schema(&ctx.state(), &url).await?,
+        },
     };
     let config = ListingTableConfig::new(url)
         .with_listing_options(options)
         .with_schema(schema);
     let _ = ctx.deregister_table(table);
     ctx.register_table(table, Arc::new(ListingTable::try_new(config)?))?;
+    Ok(())
+}
+
+/// The output store's root URL, ending with `/`.
+fn root_url(out: &Location) -> String {
+    let mut url = out.root_url.to_string();
+    if !url.ends_with('/') {
+        url.push('/');
+    }
+    url
+}
+
+/// A Parquet file of the newest `dt=` partition of tile folder `dir`, if any: two
+/// listings of one level each, whatever the number of partitions.
+async fn newest_file(
+    out: &Location,
+    dir: &StorePath,
+) -> datafusion::error::Result<Option<StorePath>> {
+    let top = out.store.list_with_delimiter(Some(dir)).await?;
+    let mut parts: Vec<&StorePath> = top
+        .common_prefixes
+        .iter()
+        .filter(|p| p.filename().is_some_and(|f| f.starts_with("dt=")))
+        .collect();
+    parts.sort();
+    for part in parts.into_iter().rev() {
+        let files = out.store.list_with_delimiter(Some(part)).await?;
+        if let Some(f) = files
+            .objects
+            .iter()
+            .find(|o| o.location.as_ref().ends_with(".parquet") && o.size > 0)
+        {
+            return Ok(Some(f.location.clone()));
+        }
+    }
+    Ok(None)
+}
+
+/// Registers `scoped` as a table over only the `dt=` partitions `parts` of tile folder
+/// `dir`, without the partition column, with the schema of `table` (the whole folder,
+/// registered already). DataFusion 55 lists a partitioned table's whole folder for a
+/// filter such as `dt IN (...)`, so a daily build reading a few dozen partitions listed
+/// every tile file of the history, several times; this table lists only its partitions.
+pub async fn register_partitions(
+    ctx: &SessionContext,
+    out: &Location,
+    dir: &StorePath,
+    table: &str,
+    scoped: &str,
+    parts: &BTreeSet<NaiveDate>,
+) -> datafusion::error::Result<()> {
+    let whole = ctx.table_provider(table).await?.schema();
+    let schema = Arc::new(datafusion::arrow::datatypes::Schema::new(
+        whole
+            .fields()
+            .iter()
+            .filter(|f| f.name() != "dt")
+            .cloned()
+            .collect::<Vec<_>>(),
+    ));
+    let root = root_url(out);
+    let urls = parts
+        .iter()
+        .map(|d| ListingTableUrl::parse(format!("{root}{}/dt={d}/", dir.as_ref())))
+        .collect::<datafusion::error::Result<Vec<_>>>()?;
+    let options = ListingOptions::new(Arc::new(
+        ParquetFormat::default().with_force_view_types(false),
+    ))
+    .with_file_extension(".parquet");
+    let config = ListingTableConfig::new_with_multi_paths(urls)
+        .with_listing_options(options)
+        .with_schema(schema);
+    let _ = ctx.deregister_table(scoped);
+    ctx.register_table(scoped, Arc::new(ListingTable::try_new(config)?))?;
     Ok(())
 }
 

@@ -190,6 +190,38 @@ async fn range_under_memory_limit(
         .await
         .unwrap();
     assert!(stats["plays"].rollups_built >= 2, "{stats:?}");
+    // The snapshot reads a table over only the tile partitions of its day pieces (a row of
+    // event day d sits in the partitions of d - 1, d and d + 1), not the whole folder.
+    let pieces = &plan.sources["plays"];
+    let wanted: std::collections::BTreeSet<String> = pieces
+        .days
+        .iter()
+        .flat_map(|d| {
+            [
+                *d - chrono::Duration::days(1),
+                *d,
+                *d + chrono::Duration::days(1),
+            ]
+        })
+        .map(|d| format!("dt={d}/"))
+        .collect();
+    assert!(pieces.scoped && !wanted.is_empty());
+    let scoped = ctx
+        .table_provider(daymark_engine::rollups::scoped_table(
+            &ls["plays"].table(),
+            last,
+        ))
+        .await
+        .unwrap();
+    let listing = scoped
+        .downcast_ref::<datafusion::datasource::listing::ListingTable>()
+        .unwrap();
+    let got: std::collections::BTreeSet<String> = listing
+        .table_paths()
+        .iter()
+        .map(|u| u.as_str().rsplit('/').nth(1).unwrap().to_string() + "/")
+        .collect();
+    assert_eq!(got, wanted);
     let tiled = run(&ctx, &tiled_snapshot_query(pipeline, ls, &plan, None).sql).await;
     assert_same(
         &rows_of_day(all, last),
