@@ -915,7 +915,11 @@ async fn newest_file(
     out: &Location,
     dir: &StorePath,
 ) -> datafusion::error::Result<Option<StorePath>> {
-    let top = out.store.list_with_delimiter(Some(dir)).await?;
+    let top = match out.store.list_with_delimiter(Some(dir)).await {
+        Ok(top) => top,
+        Err(daymark_store::object_store::Error::NotFound { .. }) => return Ok(None),
+        Err(e) => return Err(e.into()),
+    };
     let mut parts: Vec<&StorePath> = top
         .common_prefixes
         .iter()
