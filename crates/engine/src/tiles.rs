@@ -856,11 +856,8 @@ pub async fn register_tiles(
     table: &str,
 ) -> datafusion::error::Result<()> {
     let url = ListingTableUrl::parse(format!("{}{}/", root_url(out), dir.as_ref()))?;
-    let options = ListingOptions::new(Arc::new(
-        ParquetFormat::default().with_force_view_types(false),
-    ))
-    .with_file_extension(".parquet")
-    .with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
+    let options =
+        tile_options().with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
     // A tile folder's files all have one schema (its layout's): a table registered again
     // over the same folder keeps the schema it had rather than reading every footer.
     let known = match ctx.table_provider(table).await {
@@ -871,16 +868,7 @@ pub async fn register_tiles(
         Err(_) => None,
     };
     let schema = match known {
-        Some(s) if s.fields().len() > 1 => {
-            // The table's schema ends with the partition column, which is not in the files.
-            Arc::new(datafusion::arrow::datatypes::Schema::new(
-                s.fields()
-                    .iter()
-                    .filter(|f| f.name() != "dt")
-                    .cloned()
-                    .collect::<Vec<_>>(),
-            ))
-        }
+        Some(s) if s.fields().len() > 1 => files_schema(&s),
         _ => match newest_file(out, dir).await? {
             // All files of a tile folder have its layout's schema: one footer tells it,
             // where inferring from the folder read every file's (1,340 footers for the
@@ -892,11 +880,44 @@ pub async fn register_tiles(
             None => options.infer_schema(&ctx.state(), &url).await?,
         },
     };
-    let config = ListingTableConfig::new(url)
+    replace_table(ctx, table, vec![url], options, schema)
+}
+
+/// Listing options of tile files (partition columns aside).
+fn tile_options() -> ListingOptions {
+    ListingOptions::new(Arc::new(
+        ParquetFormat::default().with_force_view_types(false),
+    ))
+    .with_file_extension(".parquet")
+}
+
+/// A tile table's schema without its partition column `dt`, which is not in the files.
+fn files_schema(
+    table: &datafusion::arrow::datatypes::Schema,
+) -> datafusion::arrow::datatypes::SchemaRef {
+    Arc::new(datafusion::arrow::datatypes::Schema::new(
+        table
+            .fields()
+            .iter()
+            .filter(|f| f.name() != "dt")
+            .cloned()
+            .collect::<Vec<_>>(),
+    ))
+}
+
+/// Registers `name` as a listing table over `urls`, in place of any table of that name.
+fn replace_table(
+    ctx: &SessionContext,
+    name: &str,
+    urls: Vec<ListingTableUrl>,
+    options: ListingOptions,
+    schema: datafusion::arrow::datatypes::SchemaRef,
+) -> datafusion::error::Result<()> {
+    let config = ListingTableConfig::new_with_multi_paths(urls)
         .with_listing_options(options)
         .with_schema(schema);
-    let _ = ctx.deregister_table(table);
-    ctx.register_table(table, Arc::new(ListingTable::try_new(config)?))?;
+    let _ = ctx.deregister_table(name);
+    ctx.register_table(name, Arc::new(ListingTable::try_new(config)?))?;
     Ok(())
 }
 
@@ -952,30 +973,13 @@ pub async fn register_partitions(
     scoped: &str,
     parts: &BTreeSet<NaiveDate>,
 ) -> datafusion::error::Result<()> {
-    let whole = ctx.table_provider(table).await?.schema();
-    let schema = Arc::new(datafusion::arrow::datatypes::Schema::new(
-        whole
-            .fields()
-            .iter()
-            .filter(|f| f.name() != "dt")
-            .cloned()
-            .collect::<Vec<_>>(),
-    ));
+    let schema = files_schema(&ctx.table_provider(table).await?.schema());
     let root = root_url(out);
     let urls = parts
         .iter()
         .map(|d| ListingTableUrl::parse(format!("{root}{}/dt={d}/", dir.as_ref())))
         .collect::<datafusion::error::Result<Vec<_>>>()?;
-    let options = ListingOptions::new(Arc::new(
-        ParquetFormat::default().with_force_view_types(false),
-    ))
-    .with_file_extension(".parquet");
-    let config = ListingTableConfig::new_with_multi_paths(urls)
-        .with_listing_options(options)
-        .with_schema(schema);
-    let _ = ctx.deregister_table(scoped);
-    ctx.register_table(scoped, Arc::new(ListingTable::try_new(config)?))?;
-    Ok(())
+    replace_table(ctx, scoped, urls, tile_options(), schema)
 }
 
 /// The tile layouts of every source that something reads.
