@@ -195,7 +195,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         // and months between). A range: the tiles of every day.
         let per_source = if days.len() == 1 {
             let (stats, day_plan) = daymark_engine::rollups::plan_day(
-                &ctx, &pipeline, &reports, &layouts, &out, days[0], mode, false,
+                &ctx, &pipeline, &reports, &layouts, &out, days[0], mode,
             )
             .await
             .map_err(|e| memory_hint(e.into()))?;
@@ -269,12 +269,15 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         if let Err(e) = result {
             return report_build_error(&log, e);
         }
-        // Roll up whole months (and the weeks the next day needs) now, while the tiles are
-        // fresh, so that the daily builds after this backfill read a few dozen pieces.
+        // Roll up the weeks and months the next day's windows read now, so that the daily
+        // build after this backfill reads a few dozen pieces. Months that only a longer
+        // window would read are rolled up by the first build that needs them (they were
+        // all rolled up here before: 13 months of plays where a 91-day window reads 2,
+        // most of the roll-up time; docs/benchmarks.md, eleventh measurement).
         let t_roll = std::time::Instant::now();
         let next = days[days.len() - 1] + chrono::Duration::days(1);
         match daymark_engine::rollups::plan_day(
-            &ctx, &pipeline, &reports, &layouts, &out, next, mode, true,
+            &ctx, &pipeline, &reports, &layouts, &out, next, mode,
         )
         .await
         {

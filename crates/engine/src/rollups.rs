@@ -637,9 +637,7 @@ async fn register_tables(
 
 /// Plans snapshot `day`: cuts the days each source's windows need into pieces, builds the
 /// roll-ups the plan uses that are missing or stale and the tiles its pieces read (each raw
-/// partition at most once), and registers them. With `all_months`, every complete month of
-/// each source's partitions that ends by D-2 is rolled up too, used or not (what a backfill
-/// leaves for the daily builds after it, whatever their windows). Returns what it cost,
+/// partition at most once), and registers them. Returns what it cost,
 /// per source, with the rows ignored for a null key or counted for an event time after
 /// their arrival among the rows the pieces cover.
 #[allow(clippy::too_many_arguments)]
@@ -651,7 +649,6 @@ pub async fn plan_day(
     out: &Location,
     day: NaiveDate,
     mode: KnowledgeOverride,
-    all_months: bool,
 ) -> Result<(BTreeMap<String, TileStats>, DayPlan), BuildError> {
     let naive = crate::sql::snapshot_query(pipeline, day, mode);
     let last = day - Duration::days(1);
@@ -685,7 +682,6 @@ pub async fn plan_day(
         let mut checked: BTreeMap<NaiveDate, Ignored> = BTreeMap::new();
         // Whether the day tiles are registered since the last ones were written.
         let mut registered = false;
-        let mut first_round = true;
         let pieces = loop {
             let usable = |s: Span| match known.get(&s) {
                 None => true,
@@ -697,26 +693,12 @@ pub async fn plan_day(
             } else {
                 Pieces::default()
             };
-            let mut wanted: BTreeSet<Span> = pieces
+            let wanted: BTreeSet<Span> = pieces
                 .spans
                 .iter()
                 .filter(|s| !known.contains_key(s))
                 .copied()
                 .collect();
-            if first_round && all_months {
-                let mut m = month_start(floor).first;
-                while m <= stable {
-                    let span = Span {
-                        level: Level::Month,
-                        first: m,
-                    };
-                    if m >= floor && span.last() <= stable && !known.contains_key(&span) {
-                        wanted.insert(span);
-                    }
-                    m = span.last() + Duration::days(1);
-                }
-            }
-            first_round = false;
             if wanted.is_empty() {
                 break pieces;
             }

@@ -186,7 +186,7 @@ async fn range_under_memory_limit(
     // one span per query (the days after reuse them without a limit, checked against the
     // naive path there) and gives the same rows.
     let last = *days.last().unwrap();
-    let (stats, plan) = plan_day(&ctx, pipeline, reports, ls, out, last, None, false)
+    let (stats, plan) = plan_day(&ctx, pipeline, reports, ls, out, last, None)
         .await
         .unwrap();
     assert!(stats["plays"].rollups_built >= 2, "{stats:?}");
@@ -306,7 +306,7 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
             if n % 5 == 0 || (day("2026-03-07")..=day("2026-03-09")).contains(d) || *d == last {
                 // The daily build: the day's pieces (tiles at the window edges, week and
                 // month roll-ups between, built on first use).
-                let (_, plan) = plan_day(&ctx, &pipeline, &reports, &ls, &out, *d, mode, false)
+                let (_, plan) = plan_day(&ctx, &pipeline, &reports, &ls, &out, *d, mode)
                     .await
                     .unwrap();
                 for p in plan.sources.values() {
@@ -349,7 +349,6 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
         &out,
         day("2026-06-16"),
         None,
-        false,
     )
     .await
     .unwrap();
@@ -365,7 +364,6 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
         &out,
         day("2026-06-17"),
         None,
-        false,
     )
     .await
     .unwrap();
@@ -496,7 +494,7 @@ async fn daily(
     bool,
     RecordBatch,
 ) {
-    let (stats, plan) = plan_day(ctx, pipeline, reports, ls, out, d, mode, false)
+    let (stats, plan) = plan_day(ctx, pipeline, reports, ls, out, d, mode)
         .await
         .unwrap();
     let rolled = !plan.sources["plays"].spans.is_empty();

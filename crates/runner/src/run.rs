@@ -533,7 +533,7 @@ async fn build_days(
         let result = if run.len() == 1 {
             // One day reads its pieces: tiles at its windows' edges, roll-ups between.
             match daymark_engine::rollups::plan_day(
-                &ctx, pipeline, sources, &layouts, out, run[0], opts.mode, false,
+                &ctx, pipeline, sources, &layouts, out, run[0], opts.mode,
             )
             .await
             {
