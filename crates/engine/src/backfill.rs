@@ -1048,7 +1048,7 @@ pub async fn build_range(
         .map_err(|e| engine(first)(e.into()))?;
     let mut publisher = Publisher {
         ctx,
-        pipeline,
+        pipeline: std::sync::Arc::new(pipeline.clone()),
         out,
         mode,
         schema,
@@ -1057,9 +1057,13 @@ pub async fn build_range(
         on_day,
         reports: Vec::new(),
         queries: ranges.len(),
+        closing: std::collections::VecDeque::new(),
+        // Days encoded side by side: one per core (the merge or query feeding them runs
+        // beside them).
+        side_by_side: ctx.state().config().target_partitions().max(1),
     };
     let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();
-    let mut current: Option<(DayWriter, Instant)> = None;
+    let mut current: Option<OpenDay> = None;
     let epoch = NaiveDate::from_ymd_opt(1970, 1, 1).expect("epoch");
     let streamed: Result<(), BuildError> = async {
         while let Some(batch) = stream.next().await {
@@ -1074,39 +1078,40 @@ pub async fn build_range(
                 crate::build::equal_runs(batch.num_rows(), |a, b| dates.value(a) == dates.value(b))
             {
                 let d = epoch + chrono::Duration::days(dates.value(run.start) as i64);
-                if current.as_ref().map(|(w, _)| w.day()) != Some(d) {
-                    if let Some(w) = current.take() {
-                        publisher.close(w).await?;
+                if current.as_ref().map(|o| o.day) != Some(d) {
+                    if let Some(o) = current.take() {
+                        publisher.close(o).await?;
                     }
                     // Days before `d` with no rows at all still get a (empty) snapshot.
                     while let Some(p) = pending.next_if(|p| *p < d) {
-                        publisher.empty(p).await?;
+                        let o = publisher.open(p)?;
+                        publisher.close(o).await?;
                     }
                     pending.next();
                     current = Some(publisher.open(d)?);
                 }
-                let slice: RecordBatch = batch.slice(run.start, run.len());
-                if let Some((w, _)) = current.as_mut() {
-                    w.tally(pipeline, &slice);
-                    w.write(&slice).await?;
+                if let Some(o) = current.as_mut() {
+                    o.send(batch.slice(run.start, run.len())).await?;
                 }
             }
         }
-        Ok(())
+        if let Some(o) = current.take() {
+            publisher.close(o).await?;
+        }
+        for p in pending.by_ref() {
+            let o = publisher.open(p)?;
+            publisher.close(o).await?;
+        }
+        publisher.drain().await
     }
     .await;
     if let Err(e) = streamed {
-        // Nothing half-written: the day being written is dropped from staging.
-        if let Some((w, _)) = current.take() {
-            w.abandon().await;
+        // Nothing half-written: the days being written are dropped from staging.
+        if let Some(o) = current.take() {
+            publisher.closing.push_back(o.finish());
         }
+        publisher.abandon().await;
         return Err(e);
-    }
-    if let Some(w) = current.take() {
-        publisher.close(w).await?;
-    }
-    for p in pending {
-        publisher.empty(p).await?;
     }
     Ok(publisher.reports)
 }
@@ -1263,11 +1268,15 @@ impl Iterator for KeyRangeMerge {
     }
 }
 
-/// Publishes the per-day files of a range, in date order: provenance into the footer,
-/// checks, rename, then tells `on_day`.
+/// Publishes the per-day files of a range in date order (provenance into the footer,
+/// checks, rename, then tells `on_day`) while up to `side_by_side` of them are encoded
+/// at once: each day's rows go to a task of their own that writes and closes the day's
+/// staging file (Parquet encoding and compression, most of publishing's time, ran on one
+/// core before: docs/benchmarks.md, eleventh measurement); checks and renames stay in day
+/// order, since a day's checks compare it with the day published before it.
 struct Publisher<'a, F: FnMut(&DayReport)> {
     ctx: &'a SessionContext,
-    pipeline: &'a Pipeline,
+    pipeline: std::sync::Arc<Pipeline>,
     out: &'a Location,
     mode: KnowledgeOverride,
     schema: datafusion::arrow::datatypes::SchemaRef,
@@ -1277,21 +1286,66 @@ struct Publisher<'a, F: FnMut(&DayReport)> {
     reports: Vec<DayReport>,
     /// Queries (ranges of keys) the rows come from.
     queries: usize,
+    /// Days whose rows are all sent, oldest first, closing or closed.
+    closing: std::collections::VecDeque<Closing>,
+    side_by_side: usize,
+}
+
+/// A day being written by its task: send its rows, then [`OpenDay::finish`].
+struct OpenDay {
+    day: NaiveDate,
+    rows: tokio::sync::mpsc::Sender<RecordBatch>,
+    task: tokio::task::JoinHandle<Result<crate::build::ClosedDay, BuildError>>,
+    started: Instant,
+}
+
+/// A day whose rows are all sent: its task closes the file.
+struct Closing {
+    day: NaiveDate,
+    task: tokio::task::JoinHandle<Result<crate::build::ClosedDay, BuildError>>,
+    started: Instant,
+}
+
+impl OpenDay {
+    /// Sends rows of the day to its task; when the task has stopped (on a write error),
+    /// returns its error.
+    async fn send(&mut self, rows: RecordBatch) -> Result<(), BuildError> {
+        if self.rows.send(rows).await.is_ok() {
+            return Ok(());
+        }
+        let day = self.day;
+        match (&mut self.task).await {
+            Ok(Err(e)) => Err(e),
+            Ok(Ok(closed)) => {
+                closed.abandon().await;
+                Err(task_error(day, "the day's writer stopped early".into()))
+            }
+            Err(e) => Err(task_error(day, e.to_string())),
+        }
+    }
+
+    /// No more rows: the task closes the file.
+    fn finish(self) -> Closing {
+        Closing {
+            day: self.day,
+            task: self.task,
+            started: self.started,
+        }
+    }
+}
+
+fn task_error(day: NaiveDate, reason: String) -> BuildError {
+    BuildError::Engine {
+        day,
+        source: datafusion::error::DataFusionError::External(reason.into()),
+    }
 }
 
 impl<F: FnMut(&DayReport)> Publisher<'_, F> {
-    /// A staging file for snapshot `day`.
-    fn open(&self, day: NaiveDate) -> Result<(DayWriter, Instant), BuildError> {
+    /// Starts the task writing snapshot `day` to a staging file.
+    fn open(&self, day: NaiveDate) -> Result<OpenDay, BuildError> {
         let path = snapshot_path(self.out, self.mode, day);
-        Ok((
-            DayWriter::new(self.out, path, day, self.schema.clone())?,
-            Instant::now(),
-        ))
-    }
-
-    /// Checks and publishes a written day.
-    async fn close(&mut self, (writer, t0): (DayWriter, Instant)) -> Result<(), BuildError> {
-        let day = writer.day();
+        let mut writer = DayWriter::new(self.out, path, day, self.schema.clone())?;
         let metadata: Vec<(String, String)> = self
             .provenance
             .get(&day)
@@ -1303,14 +1357,58 @@ impl<F: FnMut(&DayReport)> Publisher<'_, F> {
             })
             .into_iter()
             .collect();
-        let (rows, bytes, warnings) = writer
-            .finish_with(self.ctx, Some(self.pipeline), &metadata, self.staged_check)
+        let pipeline = self.pipeline.clone();
+        let (tx, mut rx) = tokio::sync::mpsc::channel::<RecordBatch>(4);
+        let task = tokio::spawn(async move {
+            while let Some(batch) = rx.recv().await {
+                writer.tally(&pipeline, &batch);
+                writer.write(&batch).await?;
+            }
+            writer.close(&metadata).await
+        });
+        Ok(OpenDay {
+            day,
+            rows: tx,
+            task,
+            started: Instant::now(),
+        })
+    }
+
+    /// Lets `day`'s task close its file, and publishes the oldest days closing while more
+    /// than `side_by_side` are.
+    async fn close(&mut self, day: OpenDay) -> Result<(), BuildError> {
+        self.closing.push_back(day.finish());
+        while self.closing.len() > self.side_by_side {
+            self.publish_oldest().await?;
+        }
+        Ok(())
+    }
+
+    /// Publishes every day still closing.
+    async fn drain(&mut self) -> Result<(), BuildError> {
+        while !self.closing.is_empty() {
+            self.publish_oldest().await?;
+        }
+        Ok(())
+    }
+
+    /// Waits for the oldest closing day, checks and publishes it.
+    async fn publish_oldest(&mut self) -> Result<(), BuildError> {
+        let Some(c) = self.closing.pop_front() else {
+            return Ok(());
+        };
+        let closed = match c.task.await {
+            Ok(closed) => closed?,
+            Err(e) => return Err(task_error(c.day, e.to_string())),
+        };
+        let (rows, bytes, warnings) = closed
+            .publish(self.ctx, Some(&self.pipeline), self.staged_check)
             .await?;
         let r = DayReport {
-            day,
+            day: c.day,
             rows,
             bytes,
-            seconds: t0.elapsed().as_secs_f64(),
+            seconds: c.started.elapsed().as_secs_f64(),
             warnings,
             queries: self.queries,
         };
@@ -1319,9 +1417,12 @@ impl<F: FnMut(&DayReport)> Publisher<'_, F> {
         Ok(())
     }
 
-    /// Publishes an empty snapshot for a day whose population is empty.
-    async fn empty(&mut self, day: NaiveDate) -> Result<(), BuildError> {
-        let w = self.open(day)?;
-        self.close(w).await
+    /// After an error: waits for the days still closing and deletes their staging files.
+    async fn abandon(&mut self) {
+        while let Some(c) = self.closing.pop_front() {
+            if let Ok(Ok(closed)) = c.task.await {
+                closed.abandon().await;
+            }
+        }
     }
 }

@@ -399,28 +399,92 @@ impl DayWriter {
         metadata: &[(String, String)],
         staged_check: Option<&dyn StagedCheck>,
     ) -> Result<(u64, u64, Vec<String>), BuildError> {
+        self.close(metadata)
+            .await?
+            .publish(ctx, checks, staged_check)
+            .await
+    }
+
+    /// Closes the file (with key-value `metadata` in its footer) without publishing it:
+    /// [`ClosedDay::publish`] judges and renames it. Closing encodes the file's last
+    /// pages, so days can be closed side by side and published in order.
+    pub async fn close(self, metadata: &[(String, String)]) -> Result<ClosedDay, BuildError> {
         let DayWriter {
             out,
             day,
             staging,
             final_path,
-            writer,
+            mut writer,
             rows,
             tallies,
         } = self;
-        let mut writer = writer;
-        let write_err = |path: &StorePath, reason: String| BuildError::Write {
-            day,
-            path: path.to_string(),
-            reason,
-        };
         for (k, v) in metadata {
             writer.append_key_value_metadata(KeyValue::new(k.clone(), v.clone()));
         }
         if let Err(e) = writer.close().await {
             let _ = out.store.delete(&staging).await;
-            return Err(write_err(&staging, e.to_string()));
+            return Err(BuildError::Write {
+                day,
+                path: staging.to_string(),
+                reason: e.to_string(),
+            });
         }
+        Ok(ClosedDay {
+            out,
+            day,
+            staging,
+            final_path,
+            rows,
+            tallies,
+        })
+    }
+
+    /// Abandons the file: deletes the staging object (a direct file was never put).
+    pub async fn abandon(self) {
+        if self.staging != self.final_path {
+            let _ = self.out.store.delete(&self.staging).await;
+        }
+    }
+}
+
+/// A closed [`DayWriter`] file, in staging until published.
+pub struct ClosedDay {
+    out: Location,
+    day: NaiveDate,
+    staging: StorePath,
+    final_path: StorePath,
+    rows: u64,
+    tallies: BTreeMap<String, Tally>,
+}
+
+impl ClosedDay {
+    /// The day this file belongs to.
+    pub fn day(&self) -> NaiveDate {
+        self.day
+    }
+
+    /// With `checks`, judges the expectations tallied (and runs `staged_check` on the
+    /// staged file with `ctx`); then renames the file into place. Returns (rows, bytes,
+    /// warnings). A failing check deletes the staged file and publishes nothing.
+    pub async fn publish(
+        self,
+        ctx: &SessionContext,
+        checks: Option<&Pipeline>,
+        staged_check: Option<&dyn StagedCheck>,
+    ) -> Result<(u64, u64, Vec<String>), BuildError> {
+        let ClosedDay {
+            out,
+            day,
+            staging,
+            final_path,
+            rows,
+            tallies,
+        } = self;
+        let write_err = |path: &StorePath, reason: String| BuildError::Write {
+            day,
+            path: path.to_string(),
+            reason,
+        };
         let warnings = match checks {
             Some(p) => {
                 let (mut fail, mut warnings) = judge(p, rows, &tallies);
@@ -462,7 +526,7 @@ impl DayWriter {
         Ok((rows, bytes, warnings))
     }
 
-    /// Abandons the file: deletes the staging object (a direct file was never put).
+    /// Abandons the file: deletes the staging object (a direct file is left: it is whole).
     pub async fn abandon(self) {
         if self.staging != self.final_path {
             let _ = self.out.store.delete(&self.staging).await;
