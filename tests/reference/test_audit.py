@@ -277,6 +277,35 @@ def test_failing_build_check_publishes_nothing(daymark, small_world, clean, chec
     assert not any((clean["out"] / "_staging").glob("*")) if (clean["out"] / "_staging").exists() else True
 
 
+def test_failing_check_stops_a_backfill_at_that_day(daymark, small_world, tmp_path):
+    """A backfill encodes several days at once but publishes them in order: the days before
+    the first failing one are published, none from it on, and no staging file is left."""
+    path = small_world / "strict_range.yaml"
+    path.write_text(demo_pipeline(small_world / "world",
+                                  checks="checks:\n  on_fail: fail\n  max_population_change: 0.000001\n"))
+    out = tmp_path / "out"
+    first = START + dt.timedelta(days=40)
+    days = [first + dt.timedelta(days=i) for i in range(10)]
+    p = run(daymark, "build", path, "--from", days[0], "--to", days[-1], "--out", out, check=False)
+    assert p.returncode == 3, p.stdout + p.stderr
+    m = re.search(r"snapshot (\d{4}-\d\d-\d\d): 1 check\(s\) failed[^\n]*\n\s+"
+                  r"population: (\d+) rows against (\d+) on (\d{4}-\d\d-\d\d)", p.stderr)
+    assert m, p.stderr
+    failed, rows, prev_rows, prev = dt.date.fromisoformat(m[1]), int(m[2]), int(m[3]), m[4]
+    assert days[0] < failed < days[-1]
+    published = sorted(d.name for d in (out / "snapshots").glob("dt=*"))
+    assert published == [f"dt={d}" for d in days if d < failed]
+    # Read with DuckDB: the published days have equal populations (so they passed), and the
+    # failing day's message names the previous day's row count as published.
+    con = duckdb.connect()
+    counts = [con.execute(f"SELECT count(*) FROM read_parquet('{out}/snapshots/{d}/*.parquet')").fetchone()[0]
+              for d in published]
+    assert len(set(counts)) == 1, counts
+    assert published[-1] == f"dt={prev}" and counts[-1] == prev_rows != rows
+    staging = out / "_staging"
+    assert not staging.exists() or not any(staging.iterdir())
+
+
 CHROMIUM_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
                   "--disable-background-networking", "--disable-component-update", "--disable-sync",
                   "--enable-logging=stderr", "--v=0", "--window-size=1280,4000"]
