@@ -503,10 +503,7 @@ async fn build(
     let firsts: Vec<NaiveDate> = spans.iter().map(|s| s.first).collect();
     // Tile rows of the partitions the spans cover whose event day lies in one of them (none
     // when the spans cover no partition: a week without events gets an empty roll-up).
-    let in_parts = match parts.is_empty() {
-        true => "FALSE".to_string(),
-        false => format!("dt IN ({})", in_list(&parts)),
-    };
+    let in_parts = crate::sql::partition_condition("dt", &parts, true);
     let rows =
         |table: &str| {
             format!(

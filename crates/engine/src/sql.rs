@@ -9,7 +9,7 @@ use chrono::{DateTime, Duration, NaiveDate, Utc};
 use daymark_spec::{
     Aggregation, DerivedOp, Feature, FeatureDef, FillValue, Knowledge, Pipeline, Population, Window,
 };
-use std::collections::{BTreeMap, HashSet};
+use std::collections::{BTreeMap, BTreeSet, HashSet};
 
 /// Quotes an identifier for SQL.
 pub fn ident(name: &str) -> String {
@@ -20,6 +20,49 @@ pub fn ident(name: &str) -> String {
 pub fn literal(text: &str) -> String {
     format!("'{}'", text.replace('\'', "''"))
 }
+
+/// A condition on a Hive day-partition column `col` (text, `YYYY-MM-DD`) that holds for
+/// exactly the partitions `days`. When every folder name of the table is a date
+/// (`names_are_dates`: daymark's own tile folders, or a source whose listing ignored
+/// nothing), it is a range per run of consecutive days (`>=`, `<=`, on names of 10
+/// characters, so that a date written without its zeros stays out as it would of a list);
+/// otherwise, or when the days are scattered into more than [`MAX_PARTITION_RUNS`] runs,
+/// an `IN` list. DataFusion 55 plans a partition filter anew for every file of the table
+/// it lists (`filter_partitioned_file`), so an `IN` list of a few hundred days cost a hash
+/// set per file: about 8% of a backfill's CPU time (docs/benchmarks.md, eleventh
+/// measurement).
+pub fn partition_condition(col: &str, days: &BTreeSet<NaiveDate>, names_are_dates: bool) -> String {
+    let mut runs: Vec<(NaiveDate, NaiveDate)> = Vec::new();
+    for d in days {
+        match runs.last_mut() {
+            Some((_, last)) if *last + Duration::days(1) == *d => *last = *d,
+            _ => runs.push((*d, *d)),
+        }
+    }
+    if runs.is_empty() {
+        return "FALSE".to_string();
+    }
+    let lit = |d: &NaiveDate| literal(&d.to_string());
+    if !names_are_dates || runs.len() > MAX_PARTITION_RUNS {
+        let list: Vec<String> = days.iter().map(lit).collect();
+        return format!("{col} IN ({})", list.join(", "));
+    }
+    let terms: Vec<String> = runs
+        .iter()
+        .map(|(a, b)| match a == b {
+            true => format!("{col} = {}", lit(a)),
+            false => format!(
+                "({col} >= {} AND {col} <= {} AND character_length({col}) = 10)",
+                lit(a),
+                lit(b)
+            ),
+        })
+        .collect();
+    format!("({})", terms.join(" OR "))
+}
+
+/// Runs of consecutive days beyond which [`partition_condition`] lists the days instead.
+pub const MAX_PARTITION_RUNS: usize = 8;
 
 /// A UTC instant as a SQL timestamp literal with the UTC zone.
 pub fn ts_literal(t: DateTime<Utc>) -> String {
@@ -487,4 +530,100 @@ pub(crate) fn transform_sql(f: &Feature, v: &str) -> String {
         x = case;
     }
     x
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{partition_condition, MAX_PARTITION_RUNS};
+    use chrono::{Duration, NaiveDate};
+    use datafusion::arrow::array::AsArray;
+    use datafusion::prelude::SessionContext;
+    use std::collections::BTreeSet;
+
+    fn d(s: &str) -> NaiveDate {
+        s.parse().unwrap()
+    }
+
+    /// The partition names among `names` the condition keeps, evaluated by DataFusion.
+    async fn kept(
+        days: &BTreeSet<NaiveDate>,
+        names_are_dates: bool,
+        names: &[&str],
+    ) -> Vec<String> {
+        let values: Vec<String> = names.iter().map(|n| format!("('{n}')")).collect();
+        let sql = format!(
+            "SELECT dt FROM (VALUES {}) AS t(dt) WHERE {} ORDER BY dt",
+            values.join(", "),
+            partition_condition("dt", days, names_are_dates)
+        );
+        let batches = SessionContext::new()
+            .sql(&sql)
+            .await
+            .unwrap()
+            .collect()
+            .await
+            .unwrap();
+        batches
+            .iter()
+            .flat_map(|b| {
+                let c = b
+                    .column(0)
+                    .as_string_view_opt()
+                    .map(|a| a.iter().map(|v| v.unwrap().to_string()).collect::<Vec<_>>());
+                c.unwrap_or_else(|| {
+                    b.column(0)
+                        .as_string::<i32>()
+                        .iter()
+                        .map(|v| v.unwrap().to_string())
+                        .collect()
+                })
+            })
+            .collect()
+    }
+
+    #[tokio::test]
+    async fn runs_of_days_keep_exactly_their_partitions() {
+        // Two runs across a year's end and a lone day; a date written without its zeros
+        // falls between the runs' bounds as text.
+        let days: BTreeSet<NaiveDate> = ["2025-12-30", "2025-12-31", "2026-01-01", "2026-01-05"]
+            .iter()
+            .map(|s| d(s))
+            .collect();
+        let c = partition_condition("dt", &days, true);
+        assert_eq!(c.matches(" OR ").count(), 1, "{c}");
+        let names = [
+            "2025-12-29",
+            "2025-12-30",
+            "2025-12-31",
+            "2025-2-5",
+            "2026-01-01",
+            "2026-01-02",
+            "2026-01-05",
+            "2026-01-06",
+        ];
+        let want = ["2025-12-30", "2025-12-31", "2026-01-01", "2026-01-05"];
+        assert_eq!(kept(&days, true, &names).await, want);
+        // A folder name that is not a date can fall inside a range: such tables get a list.
+        let mut names = names.to_vec();
+        names.push("2025-12-3x");
+        assert!(partition_condition("dt", &days, false).starts_with("dt IN ("));
+        assert_eq!(kept(&days, false, &names).await, want);
+    }
+
+    #[tokio::test]
+    async fn scattered_days_are_listed() {
+        let first = d("2025-01-01");
+        let days: BTreeSet<NaiveDate> = (0..=MAX_PARTITION_RUNS as i64)
+            .map(|i| first + Duration::days(2 * i))
+            .collect();
+        let c = partition_condition("dt", &days, true);
+        assert!(c.starts_with("dt IN ("), "{c}");
+        let names: Vec<String> = (0..20)
+            .map(|i| (first + Duration::days(i)).to_string())
+            .collect();
+        let names: Vec<&str> = names.iter().map(String::as_str).collect();
+        let want: Vec<String> = days.iter().map(|d| d.to_string()).collect();
+        assert_eq!(kept(&days, true, &names).await, want);
+        assert_eq!(partition_condition("dt", &BTreeSet::new(), true), "FALSE");
+    }
 }

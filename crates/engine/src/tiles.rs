@@ -192,17 +192,22 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
 
 /// The de-duplicated rows of partitions `days` of `source`, with `__part` (the partition,
 /// as text), `__key`, `__t`, `__a`. Duplicates are looked for within a partition, as the
-/// daily build of one partition would.
-fn rows_sql(pipeline: &Pipeline, source: &Source, days: &[NaiveDate]) -> String {
+/// daily build of one partition would. `names_are_dates`: see
+/// [`crate::sql::partition_condition`].
+fn rows_sql(
+    pipeline: &Pipeline,
+    source: &Source,
+    days: &[NaiveDate],
+    names_are_dates: bool,
+) -> String {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
     let dp = ident(&source.spec.day_partition);
-    let list: Vec<String> = days.iter().map(|d| literal(&d.to_string())).collect();
     let base = format!(
-        "SELECT *, {} AS __key, CAST({dp} AS VARCHAR) AS __part FROM {} WHERE {dp} IN ({})",
+        "SELECT *, {} AS __key, CAST({dp} AS VARCHAR) AS __part FROM {} WHERE {}",
         ident(&source.key),
         ident(&source.name),
-        list.join(", "),
+        crate::sql::partition_condition(&dp, &days.iter().copied().collect(), names_are_dates),
     );
     let deduped = if source.spec.dedupe_on.is_empty() {
         base
@@ -240,12 +245,14 @@ fn rows_sql(pipeline: &Pipeline, source: &Source, days: &[NaiveDate]) -> String 
     )
 }
 
-/// The SQL of the main tiles of partitions `days`, ordered by partition (`__part` first).
+/// The SQL of the main tiles of partitions `days`, ordered by partition (`__part` first);
+/// `names_are_dates` when every partition folder name of the source is a date.
 pub fn tile_sql(
     pipeline: &Pipeline,
     source: &Source,
     layout: &TileLayout,
     days: &[NaiveDate],
+    names_are_dates: bool,
 ) -> String {
     let mut cols = vec![
         "__part".to_string(),
@@ -268,17 +275,19 @@ pub fn tile_sql(
     format!(
         "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part, __key",
         cols.join(", "),
-        rows_sql(pipeline, source, days)
+        rows_sql(pipeline, source, days, names_are_dates)
     )
 }
 
-/// The SQL of a distinct-value tile of partitions `days`, ordered by partition and key.
+/// The SQL of a distinct-value tile of partitions `days`, ordered by partition and key
+/// (`names_are_dates` as for [`tile_sql`]).
 pub fn distinct_sql(
     pipeline: &Pipeline,
     source: &Source,
     expr: &str,
     filter: &Option<String>,
     days: &[NaiveDate],
+    names_are_dates: bool,
 ) -> String {
     let wh = filter
         .as_ref()
@@ -286,7 +295,7 @@ pub fn distinct_sql(
         .unwrap_or_default();
     format!(
         "SELECT DISTINCT __part, __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh} ORDER BY __part, __key",
-        rows_sql(pipeline, source, days)
+        rows_sql(pipeline, source, days, names_are_dates)
     )
 }
 
@@ -772,6 +781,9 @@ pub async fn ensure_tiles(
             _ => stale.push((day, files, inputs)),
         }
     }
+    // A folder that is not a partition (the listing ignored it) could fall inside a range
+    // of partition names: such sources are read with a list of partitions.
+    let names_are_dates = report.listing.ignored.is_empty();
     let mut batches: Vec<&[(NaiveDate, &[DataFile], serde_json::Value)]> = Vec::new();
     let budget = bytes_per_query(ctx);
     let mut rest = &stale[..];
@@ -792,7 +804,7 @@ pub async fn ensure_tiles(
         let batch_days: Vec<NaiveDate> = batch.iter().map(|(d, _, _)| *d).collect();
         let counted = write_split(
             ctx,
-            &tile_sql(pipeline, source, layout, &batch_days),
+            &tile_sql(pipeline, source, layout, &batch_days, names_are_dates),
             out,
             &layout.dir(out),
             &batch_days,
@@ -801,7 +813,7 @@ pub async fn ensure_tiles(
         for (i, expr, filter) in &layout.distinct {
             write_split(
                 ctx,
-                &distinct_sql(pipeline, source, expr, filter, &batch_days),
+                &distinct_sql(pipeline, source, expr, filter, &batch_days, names_are_dates),
                 out,
                 &layout.distinct_dir(out, *i),
                 &batch_days,
