@@ -1059,8 +1059,13 @@ pub async fn build_range(
         queries: ranges.len(),
         closing: std::collections::VecDeque::new(),
         // Days encoded side by side: one per core (the merge or query feeding them runs
-        // beside them).
-        side_by_side: ctx.state().config().target_partitions().max(1),
+        // beside them). Under a memory limit, one day at a time as before: each day's
+        // writer holds its encoded row group until it closes, and the memory measured
+        // under a limit (docs/benchmarks.md) was measured that way.
+        side_by_side: match ctx.runtime_env().memory_pool.memory_limit() {
+            datafusion::execution::memory_pool::MemoryLimit::Finite(_) => 0,
+            _ => ctx.state().config().target_partitions().max(1),
+        },
     };
     let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();
     let mut current: Option<OpenDay> = None;
@@ -1269,8 +1274,8 @@ impl Iterator for KeyRangeMerge {
 }
 
 /// Publishes the per-day files of a range in date order (provenance into the footer,
-/// checks, rename, then tells `on_day`) while up to `side_by_side` of them are encoded
-/// at once: each day's rows go to a task of their own that writes and closes the day's
+/// checks, rename, then tells `on_day`) while up to `side_by_side` of them are closing
+/// beside the one being written: each day's rows go to a task of their own that writes and closes the day's
 /// staging file (Parquet encoding and compression, most of publishing's time, ran on one
 /// core before: docs/benchmarks.md, eleventh measurement); checks and renames stay in day
 /// order, since a day's checks compare it with the day published before it.
