@@ -458,11 +458,6 @@ pub struct ClosedDay {
 }
 
 impl ClosedDay {
-    /// The day this file belongs to.
-    pub fn day(&self) -> NaiveDate {
-        self.day
-    }
-
     /// With `checks`, judges the expectations tallied (and runs `staged_check` on the
     /// staged file with `ctx`); then renames the file into place. Returns (rows, bytes,
     /// warnings). A failing check deletes the staged file and publishes nothing.
@@ -472,14 +467,8 @@ impl ClosedDay {
         checks: Option<&Pipeline>,
         staged_check: Option<&dyn StagedCheck>,
     ) -> Result<(u64, u64, Vec<String>), BuildError> {
-        let ClosedDay {
-            out,
-            day,
-            staging,
-            final_path,
-            rows,
-            tallies,
-        } = self;
+        let (out, day, rows) = (&self.out, self.day, self.rows);
+        let (staging, final_path) = (&self.staging, &self.final_path);
         let write_err = |path: &StorePath, reason: String| BuildError::Write {
             day,
             path: path.to_string(),
@@ -487,21 +476,21 @@ impl ClosedDay {
         };
         let warnings = match checks {
             Some(p) => {
-                let (mut fail, mut warnings) = judge(p, rows, &tallies);
+                let (mut fail, mut warnings) = judge(p, rows, &self.tallies);
                 if let Some(c) = staged_check {
-                    match c.check(ctx, &out, &staging, day, rows).await {
+                    match c.check(ctx, out, staging, day, rows).await {
                         Ok((f, w)) => {
                             fail.extend(f);
                             warnings.extend(w);
                         }
                         Err(reason) => {
-                            let _ = out.store.delete(&staging).await;
+                            let _ = out.store.delete(staging).await;
                             return Err(BuildError::Check { day, reason });
                         }
                     }
                 }
                 if !fail.is_empty() {
-                    let _ = out.store.delete(&staging).await;
+                    let _ = out.store.delete(staging).await;
                     return Err(BuildError::ChecksFailed {
                         day,
                         failures: fail,
@@ -513,13 +502,13 @@ impl ClosedDay {
         };
         if staging != final_path {
             out.store
-                .rename(&staging, &final_path)
+                .rename(staging, final_path)
                 .await
-                .map_err(|e| write_err(&final_path, e.to_string()))?;
+                .map_err(|e| write_err(final_path, e.to_string()))?;
         }
         let bytes = out
             .store
-            .head(&final_path)
+            .head(final_path)
             .await
             .map(|m| m.size)
             .unwrap_or(0);
