@@ -346,8 +346,8 @@ pub fn direct_features(pipeline: &Pipeline, types: &TileTypes) -> bool {
 
 /// The rest of [`range_query`] after the spine when [`direct_features`] holds: one UNION
 /// of the visible tile rows (at their event day) and the spine (at its snapshot day), and
-/// per kind of total one windowed-total call over each key's rows in day order, for all
-/// the windows of that kind at once; the spine rows carry the snapshots.
+/// per feature one windowed-total function over each key's rows in day order; the spine
+/// rows carry the snapshots.
 fn direct_tail(
     pipeline: &Pipeline,
     layouts: &BTreeMap<String, TileLayout>,
@@ -369,9 +369,7 @@ fn direct_tail(
             }
         }
     }
-    // Per kind of windowed total, its (union column, window bound, output name) triples.
-    type Pairs = Vec<(String, String, String)>;
-    let mut windows: Vec<(WindowKind, Pairs)> = Vec::new();
+    let mut windows: Vec<String> = Vec::new();
     let mut layer0 = vec![
         format!("p.__key AS {}", ident(&pipeline.file.key)),
         "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
@@ -411,10 +409,10 @@ fn direct_tail(
                     col
                 }
             };
-            match windows.iter_mut().find(|(k, _)| *k == kind) {
-                Some((_, pairs)) => pairs.push((col, bound.clone(), out)),
-                None => windows.push((kind, vec![(col, bound.clone(), out)])),
-            }
+            windows.push(format!(
+                "{}({col}, __p, __tn, __vn, {bound}) OVER (PARTITION BY __key ORDER BY __p) AS {out}",
+                kind.name()
+            ));
         };
         let v = match agg {
             Aggregation::Count => {
@@ -528,28 +526,9 @@ fn direct_tail(
         "__p AS __dn".to_string(),
         "__tn".to_string(),
     ];
-    // One call per kind computes all its windows (a struct of totals, field `v{i}` for
-    // the i-th pair); the snapshot rows take the fields apart.
-    let mut p_cols = vec!["__key".to_string(), "__dn".to_string()];
-    for (k, (kind, pairs)) in windows.iter().enumerate() {
-        let args: Vec<String> = pairs
-            .iter()
-            .map(|(col, bound, _)| format!("{col}, {bound}"))
-            .collect();
-        w_cols.push(format!(
-            "{}(__p, __tn, __vn, {}) OVER (PARTITION BY __key ORDER BY __p) AS __w{k}",
-            kind.name_of_several(),
-            args.join(", ")
-        ));
-        for (i, (_, _, out)) in pairs.iter().enumerate() {
-            p_cols.push(format!("get_field(__w{k}, 'v{i}') AS {out}"));
-        }
-    }
+    w_cols.extend(windows);
     ctes.push(format!("__w AS (SELECT {} FROM __u)", w_cols.join(", ")));
-    ctes.push(format!(
-        "__population AS (SELECT {} FROM __w WHERE __tn IS NULL)",
-        p_cols.join(", ")
-    ));
+    ctes.push("__population AS (SELECT * FROM __w WHERE __tn IS NULL)".to_string());
     finish(pipeline, &ctes, &layer0, &[], "snapshot_date, ")
 }
 

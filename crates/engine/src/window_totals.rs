@@ -20,7 +20,7 @@
 //! every executor's session must know them: [`register`] adds them.
 
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, Decimal128Array, Int64Array, PrimitiveArray, StructArray, UInt64Array,
+    Array, ArrayRef, AsArray, Decimal128Array, Int64Array, PrimitiveArray, UInt64Array,
 };
 use datafusion::arrow::datatypes::{
     DataType, Decimal128Type, Field, FieldRef, Int64Type, UInt64Type,
@@ -33,7 +33,7 @@ use datafusion::logical_expr::{
 use datafusion::physical_expr::PhysicalExpr;
 use datafusion::prelude::SessionContext;
 use std::cmp::Reverse;
-use std::collections::BinaryHeap;
+use std::collections::{BinaryHeap, HashMap};
 use std::sync::Arc;
 
 /// Sum of the visible values (NULL when none is visible).
@@ -44,15 +44,6 @@ pub const WINDOW_DAYS: &str = "daymark_window_days";
 pub const WINDOW_FIRST_DAY: &str = "daymark_window_first_day";
 /// Latest event day of a visible row whose value is above zero (unbounded windows).
 pub const WINDOW_LAST_DAY: &str = "daymark_window_last_day";
-
-/// [`WINDOW_SUM`] over several (value, window) pairs at once, as a struct `v0, v1, ...`.
-pub const WINDOWS_SUM: &str = "daymark_windows_sum";
-/// [`WINDOW_DAYS`] over several (value, window) pairs at once.
-pub const WINDOWS_DAYS: &str = "daymark_windows_days";
-/// [`WINDOW_FIRST_DAY`] over several (value, window) pairs at once.
-pub const WINDOWS_FIRST_DAY: &str = "daymark_windows_first_day";
-/// [`WINDOW_LAST_DAY`] over several (value, window) pairs at once.
-pub const WINDOWS_LAST_DAY: &str = "daymark_windows_last_day";
 
 /// What a windowed-total function computes for each snapshot row.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
@@ -77,30 +68,14 @@ impl WindowKind {
             WindowKind::LastDay => WINDOW_LAST_DAY,
         }
     }
-
-    /// The name of the form that takes several (value, window) pairs.
-    pub fn name_of_several(self) -> &'static str {
-        match self {
-            WindowKind::Sum => WINDOWS_SUM,
-            WindowKind::Days => WINDOWS_DAYS,
-            WindowKind::FirstDay => WINDOWS_FIRST_DAY,
-            WindowKind::LastDay => WINDOWS_LAST_DAY,
-        }
-    }
 }
 
 /// `f(x, p, tn, vn, w) OVER (PARTITION BY key ORDER BY p)`: for rows whose `tn` is NULL
 /// (snapshot rows, day `p`), the aggregate of `x` over the rows visible that day; NULL on
 /// the other rows. `w` is a constant window length in days, NULL for no bound.
-///
-/// The form of several pairs, `fs(p, tn, vn, x1, w1, x2, w2, ...)`, returns a struct whose
-/// field `v{i}` is `f(x{i+1}, p, tn, vn, w{i+1})`: one call reads a key's rows once for
-/// all its windows, and DataFusion cuts the input into keys once instead of once per
-/// window (measured: docs/benchmarks.md, twelfth measurement).
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct WindowTotal {
     kind: WindowKind,
-    several: bool,
     signature: Signature,
 }
 
@@ -109,52 +84,8 @@ impl WindowTotal {
     pub fn new(kind: WindowKind) -> Self {
         WindowTotal {
             kind,
-            several: false,
             signature: Signature::any(5, Volatility::Immutable),
         }
-    }
-
-    /// The form of `kind` over several (value, window) pairs.
-    pub fn several(kind: WindowKind) -> Self {
-        WindowTotal {
-            kind,
-            several: true,
-            signature: Signature::variadic_any(Volatility::Immutable),
-        }
-    }
-
-    /// The (value, window) argument positions: `(x, p, tn, vn, w)` or
-    /// `(p, tn, vn, x1, w1, ...)`.
-    fn pairs(&self, args: usize) -> Result<Vec<(usize, usize)>> {
-        if !self.several {
-            return Ok(vec![(0, 4)]);
-        }
-        if args < 5 || !(args - 3).is_multiple_of(2) {
-            return plan_err!(
-                "{} takes (p, tn, vn, x1, w1, x2, w2, ...), not {args} arguments",
-                self.kind.name_of_several()
-            );
-        }
-        Ok((3..args).step_by(2).map(|i| (i, i + 1)).collect())
-    }
-
-    /// The output field for input fields `inputs`.
-    fn output(&self, name: &str, inputs: &[DataType]) -> Result<Field> {
-        let pairs = self.pairs(inputs.len())?;
-        let types = pairs
-            .iter()
-            .map(|(x, _)| output_type(self.kind, &inputs[*x]))
-            .collect::<Result<Vec<_>>>()?;
-        Ok(if self.several {
-            let fields: Vec<Field> = types
-                .into_iter()
-                .enumerate()
-                .map(|(i, t)| Field::new(format!("v{i}"), t, true))
-                .collect();
-            Field::new(name, DataType::Struct(fields.into()), true)
-        } else {
-            Field::new(name, types[0].clone(), true)
-        })
     }
 }
 
@@ -173,11 +104,7 @@ fn output_type(kind: WindowKind, x: &DataType) -> Result<DataType> {
 
 impl WindowUDFImpl for WindowTotal {
     fn name(&self) -> &str {
-        if self.several {
-            self.kind.name_of_several()
-        } else {
-            self.kind.name()
-        }
+        self.kind.name()
     }
 
     fn signature(&self) -> &Signature {
@@ -188,25 +115,27 @@ impl WindowUDFImpl for WindowTotal {
         &self,
         args: PartitionEvaluatorArgs,
     ) -> Result<Box<dyn PartitionEvaluator>> {
-        let inputs: Vec<DataType> = args
+        let x = args
             .input_fields()
-            .iter()
+            .first()
             .map(|f| f.data_type().clone())
-            .collect();
+            .unwrap_or(DataType::Null);
         Ok(Box::new(WindowEvaluator {
             kind: self.kind,
-            pairs: self.pairs(inputs.len())?,
-            out: self.output("out", &inputs)?.data_type().clone(),
+            out: output_type(self.kind, &x)?,
         }))
     }
 
     fn field(&self, args: WindowUDFFieldArgs) -> Result<FieldRef> {
-        let inputs: Vec<DataType> = args
-            .input_fields()
-            .iter()
+        let x = args
+            .get_input_field(0)
             .map(|f| f.data_type().clone())
-            .collect();
-        Ok(Arc::new(self.output(args.name(), &inputs)?))
+            .unwrap_or(DataType::Null);
+        Ok(Arc::new(Field::new(
+            args.name(),
+            output_type(self.kind, &x)?,
+            true,
+        )))
     }
 
     fn limit_effect(&self, _args: &[Arc<dyn PhysicalExpr>]) -> LimitEffect {
@@ -217,9 +146,6 @@ impl WindowUDFImpl for WindowTotal {
 #[derive(Debug)]
 struct WindowEvaluator {
     kind: WindowKind,
-    /// (value, window) argument positions.
-    pairs: Vec<(usize, usize)>,
-    /// The output type: one total's, or a struct of them.
     out: DataType,
 }
 
@@ -278,39 +204,24 @@ struct Visible {
     kind: WindowKind,
     rows: u64,
     sum: i128,
-    /// Visible rows per event day `first_day + i`, for `Days` (days with at least one:
-    /// `days`). A key's event days span a few hundred days: an array, not a hash map.
-    per_day: Vec<u32>,
-    first_day: i64,
+    /// Visible rows per event day, for `Days` (days with at least one: `days`).
+    per_day: HashMap<i64, u32>,
     days: i64,
     first: Option<i64>,
     last: Option<i64>,
 }
 
 impl Visible {
-    /// Nothing visible yet; `rows` (in event-day order) are the rows that may become so.
-    fn new(kind: WindowKind, rows: &[TileRow]) -> Self {
-        let (first_day, span) = match (rows.first(), rows.last()) {
-            (Some(f), Some(l)) if kind == WindowKind::Days => {
-                (f.tn, usize::try_from(l.tn - f.tn + 1).unwrap_or(0))
-            }
-            _ => (0, 0),
-        };
+    fn new(kind: WindowKind) -> Self {
         Visible {
             kind,
             rows: 0,
             sum: 0,
-            per_day: vec![0; span],
-            first_day,
+            per_day: HashMap::new(),
             days: 0,
             first: None,
             last: None,
         }
-    }
-
-    fn day_slot(&mut self, tn: i64) -> Option<&mut u32> {
-        let i = usize::try_from(tn - self.first_day).ok()?;
-        self.per_day.get_mut(i)
     }
 
     fn add(&mut self, r: &TileRow) -> Result<()> {
@@ -323,12 +234,11 @@ impl Visible {
                 }
             }
             WindowKind::Days => {
-                if let Some(n) = self.day_slot(r.tn) {
-                    *n += 1;
-                    if *n == 1 {
-                        self.days += 1;
-                    }
+                let n = self.per_day.entry(r.tn).or_insert(0);
+                if *n == 0 {
+                    self.days += 1;
                 }
+                *n += 1;
             }
             WindowKind::FirstDay => self.first = Some(self.first.map_or(r.tn, |f| f.min(r.tn))),
             WindowKind::LastDay => self.last = Some(self.last.map_or(r.tn, |l| l.max(r.tn))),
@@ -340,50 +250,72 @@ impl Visible {
     /// so never for first/last days).
     fn remove(&mut self, r: &TileRow) {
         self.rows -= 1;
-        match self.kind {
-            WindowKind::Sum => self.sum -= r.x,
-            WindowKind::Days => {
-                if let Some(n) = self.day_slot(r.tn) {
-                    *n -= 1;
-                    if *n == 0 {
-                        self.days -= 1;
-                    }
-                }
+        if self.kind == WindowKind::Sum {
+            self.sum -= r.x;
+        }
+        if let Some(n) = self.per_day.get_mut(&r.tn) {
+            *n -= 1;
+            if *n == 0 {
+                self.per_day.remove(&r.tn);
+                self.days -= 1;
             }
-            WindowKind::FirstDay | WindowKind::LastDay => {}
         }
     }
 }
 
-impl WindowEvaluator {
-    /// The totals of one (value, window) pair for the snapshot rows `snapshots` (row,
-    /// day; in day order) over the tile rows `tiles` (row, event day, first visible day;
-    /// in event-day order).
-    fn totals(
-        &self,
-        x: &Values,
-        window: Option<i64>,
-        tiles: &[(usize, i64, i64)],
-        snapshots: &[(usize, i64)],
-        num_rows: usize,
-    ) -> Result<Vec<Option<i128>>> {
-        let mut rows: Vec<TileRow> = Vec::with_capacity(tiles.len());
-        for &(i, tn, vn) in tiles {
-            let Some(x) = x.at(i) else {
-                continue;
-            };
-            if self.kind != WindowKind::Sum && x <= 0 {
-                continue;
+impl PartitionEvaluator for WindowEvaluator {
+    fn evaluate_all(&mut self, values: &[ArrayRef], num_rows: usize) -> Result<ArrayRef> {
+        let [x, p, tn, vn, w] = values else {
+            return exec_err!("{} takes (x, p, tn, vn, w)", self.kind.name());
+        };
+        let window = if num_rows == 0 {
+            None
+        } else {
+            int_at(ints(w, "w")?, 0)
+        };
+        let (p, tn, vn, x) = (
+            ints(p, "p")?,
+            ints(tn, "tn")?,
+            ints(vn, "vn")?,
+            Values::of(x)?,
+        );
+        if window.is_some() && matches!(self.kind, WindowKind::FirstDay | WindowKind::LastDay) {
+            return exec_err!("{} takes no window bound", self.kind.name());
+        }
+        // Tile rows in event-day order, and the snapshot rows (row, day).
+        let mut rows: Vec<TileRow> = Vec::new();
+        let mut snapshots: Vec<(usize, i64)> = Vec::new();
+        for i in 0..num_rows {
+            match int_at(tn, i) {
+                None => {
+                    if let Some(d) = int_at(p, i) {
+                        snapshots.push((i, d));
+                    }
+                }
+                Some(t) => {
+                    let (Some(v), Some(x)) = (int_at(vn, i), x.at(i)) else {
+                        continue;
+                    };
+                    if self.kind != WindowKind::Sum && x <= 0 {
+                        continue;
+                    }
+                    rows.push(TileRow { tn: t, vn: v, x });
+                }
             }
-            rows.push(TileRow { tn, vn, x });
+        }
+        if !rows.is_sorted_by_key(|r| r.tn) {
+            rows.sort_by_key(|r| r.tn);
+        }
+        if !snapshots.is_sorted_by_key(|s| s.1) {
+            snapshots.sort_by_key(|s| s.1);
         }
         let mut out: Vec<Option<i128>> = vec![None; num_rows];
-        let mut visible = Visible::new(self.kind, &rows);
+        let mut visible = Visible::new(self.kind);
         let mut shown = vec![false; rows.len()];
         // Rows in the window not visible yet, by first visible day.
         let mut waiting: BinaryHeap<Reverse<(i64, usize)>> = BinaryHeap::new();
         let (mut entered, mut left) = (0usize, 0usize);
-        for &(i, d) in snapshots {
+        for (i, d) in snapshots {
             // A row can be visible on day d only if its event day is before d.
             while entered < rows.len() && rows[entered].tn < d {
                 if rows[entered].vn <= d {
@@ -421,70 +353,7 @@ impl WindowEvaluator {
                 WindowKind::LastDay => visible.last.map(i128::from),
             };
         }
-        Ok(out)
-    }
-}
-
-impl PartitionEvaluator for WindowEvaluator {
-    fn evaluate_all(&mut self, values: &[ArrayRef], num_rows: usize) -> Result<ArrayRef> {
-        let (p, tn, vn) = match (self.pairs.len(), values) {
-            (1, [_, p, tn, vn, _]) if !matches!(self.out, DataType::Struct(_)) => (p, tn, vn),
-            (_, [p, tn, vn, ..]) if matches!(self.out, DataType::Struct(_)) => (p, tn, vn),
-            _ => return exec_err!("{}: unexpected arguments", self.kind.name()),
-        };
-        let (p, tn, vn) = (ints(p, "p")?, ints(tn, "tn")?, ints(vn, "vn")?);
-        // Tile rows (row, event day, first visible day) in event-day order, and the
-        // snapshot rows (row, day) in day order: read once for every pair.
-        let mut tiles: Vec<(usize, i64, i64)> = Vec::new();
-        let mut snapshots: Vec<(usize, i64)> = Vec::new();
-        for i in 0..num_rows {
-            match int_at(tn, i) {
-                None => {
-                    if let Some(d) = int_at(p, i) {
-                        snapshots.push((i, d));
-                    }
-                }
-                Some(t) => {
-                    if let Some(v) = int_at(vn, i) {
-                        tiles.push((i, t, v));
-                    }
-                }
-            }
-        }
-        if !tiles.is_sorted_by_key(|r| r.1) {
-            tiles.sort_by_key(|r| r.1);
-        }
-        if !snapshots.is_sorted_by_key(|s| s.1) {
-            snapshots.sort_by_key(|s| s.1);
-        }
-        let mut columns: Vec<ArrayRef> = Vec::with_capacity(self.pairs.len());
-        for (k, &(xi, wi)) in self.pairs.iter().enumerate() {
-            let (Some(x), Some(w)) = (values.get(xi), values.get(wi)) else {
-                return exec_err!("{}: missing arguments", self.kind.name());
-            };
-            let window = if num_rows == 0 {
-                None
-            } else {
-                int_at(ints(w, "w")?, 0)
-            };
-            if window.is_some() && matches!(self.kind, WindowKind::FirstDay | WindowKind::LastDay) {
-                return exec_err!("{} takes no window bound", self.kind.name());
-            }
-            let out = self.totals(&Values::of(x)?, window, &tiles, &snapshots, num_rows)?;
-            let ty = match &self.out {
-                DataType::Struct(fields) => fields[k].data_type().clone(),
-                t => t.clone(),
-            };
-            columns.push(to_array(&ty, out)?);
-        }
-        match &self.out {
-            DataType::Struct(fields) => Ok(Arc::new(StructArray::try_new(
-                fields.clone(),
-                columns,
-                None,
-            )?)),
-            _ => Ok(columns.remove(0)),
-        }
+        to_array(&self.out, out)
     }
 }
 
@@ -531,12 +400,7 @@ pub fn window_functions() -> Vec<WindowUDF> {
         WindowKind::LastDay,
     ]
     .into_iter()
-    .flat_map(|k| {
-        [
-            WindowUDF::from(WindowTotal::new(k)),
-            WindowUDF::from(WindowTotal::several(k)),
-        ]
-    })
+    .map(|k| WindowUDF::from(WindowTotal::new(k)))
     .collect()
 }
 
@@ -713,46 +577,6 @@ mod tests {
             .await;
             assert!(reference.lines().count() > 2_500, "{reference}");
             assert_eq!(mine, reference, "window {w}");
-        }
-    }
-
-    /// The form of several pairs gives, field by field, what one call per pair gives (on
-    /// the generated rows of the test above, with values of two types and three windows).
-    #[tokio::test]
-    async fn several_pairs_equal_one_call_each() {
-        let ctx = context(5).await;
-        ctx.sql(
-            "CREATE TABLE u AS SELECT 'k' || CAST(i % 13 AS VARCHAR) AS k,
-                CAST((i * 7919) % 50 AS BIGINT) AS p,
-                CASE WHEN i % 3 = 0 THEN NULL ELSE CAST((i * 7919) % 50 AS BIGINT) END AS tn,
-                CASE WHEN i % 3 = 0 THEN NULL ELSE CAST((i * 7919) % 50 + 1 + (i % 5) AS BIGINT) END AS vn,
-                CAST((i * 104729) % 11 - 3 AS BIGINT) AS x,
-                CAST((i * 104729) % 11 - 3 AS DECIMAL(38, 12)) / 3 AS y
-             FROM unnest(range(0, 900)) AS r(i)",
-        )
-        .await
-        .unwrap();
-        let over = "OVER (PARTITION BY k ORDER BY p)";
-        for kind in [WindowKind::Sum, WindowKind::Days] {
-            let (one, many) = (kind.name(), kind.name_of_several());
-            let singles = format!(
-                "SELECT k, p, tn, {one}(x, p, tn, vn, 3) {over} AS a, {one}(y, p, tn, vn, 10) {over} AS b, {one}(x, p, tn, vn, CAST(NULL AS BIGINT)) {over} AS c FROM u"
-            );
-            let struct_form = format!(
-                "SELECT k, p, tn, get_field(s, 'v0') AS a, get_field(s, 'v1') AS b, get_field(s, 'v2') AS c FROM (SELECT k, p, tn, {many}(p, tn, vn, x, 3, y, 10, x, CAST(NULL AS BIGINT)) {over} AS s FROM u)"
-            );
-            let text = |sql: String| {
-                let ctx = &ctx;
-                async move {
-                    let sql =
-                        format!("SELECT * FROM ({sql}) WHERE tn IS NULL ORDER BY k, p, a, b, c");
-                    let b = ctx.sql(&sql).await.unwrap().collect().await.unwrap();
-                    pretty_format_batches(&b).unwrap().to_string()
-                }
-            };
-            let (a, b) = (text(singles).await, text(struct_form).await);
-            assert!(a.lines().count() > 250, "{a}");
-            assert_eq!(a, b, "{many}");
         }
     }
 

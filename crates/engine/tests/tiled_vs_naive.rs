@@ -450,7 +450,7 @@ async fn direct_range_query_equals_naive_for_every_day_in_both_modes() {
     let mut as_known: Vec<RecordBatch> = Vec::new();
     for mode in [None, Some(Knowledge::EventTime)] {
         let sql = range_query(&pipeline, &ls, first, last, mode, &types, &KeyRange::all());
-        assert!(sql.contains("daymark_windows_sum"), "{sql}");
+        assert!(sql.contains("daymark_window_sum"), "{sql}");
         let range = run(&ctx, &sql).await;
         let parts =
             key_range_results(&ctx, &pipeline, &ls, (first, last), mode, &types, 3_000).await;
