@@ -177,17 +177,69 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         }
         eprintln!("--allow-gaps: building without them");
     }
+    // One writer per output: the lock that `run` and `watch` take (a build started by hand
+    // beside a scheduled run would otherwise race it for the same files).
+    let me = daymark_runner::ledger::RunIdentity::current();
+    let guard = match daymark_runner::lock::acquire(&out, &me, "build", BUILD_LOCK_LEASE).await? {
+        daymark_runner::lock::Acquire::Acquired(guard, note) => {
+            if let Some(n) = note {
+                eprintln!("{n}");
+            }
+            guard
+        }
+        daymark_runner::lock::Acquire::Held(info) => {
+            eprintln!(
+                "another run holds the output lock: {}; nothing built",
+                info.describe()
+            );
+            return Ok(exit::LOCK_HELD);
+        }
+    };
+    let result = build_locked(
+        &args,
+        &pipeline,
+        &reports,
+        &types,
+        &out,
+        &days,
+        mode,
+        memory_limit,
+        &footers,
+    )
+    .await;
+    let released = guard.release().await;
+    let code = result?;
+    released?;
+    Ok(code)
+}
+
+/// Lease of the output lock while `daymark build` works (renewed every third of it).
+const BUILD_LOCK_LEASE: std::time::Duration = std::time::Duration::from_secs(120);
+
+/// `daymark build` once it holds the output lock.
+#[allow(clippy::too_many_arguments)]
+async fn build_locked(
+    args: &BuildArgs,
+    pipeline: &Pipeline,
+    reports: &BTreeMap<String, SourceReport>,
+    types: &daymark_engine::FeatureTypes,
+    out: &daymark_store::Location,
+    days: &[NaiveDate],
+    mode: Option<Knowledge>,
+    memory_limit: Option<usize>,
+    footers: &daymark_store::FooterReads,
+) -> Result<u8> {
     let ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
         memory_limit,
         target_partitions: None,
         ..Default::default()
     })?;
-    register_sources(&ctx, &pipeline, &reports).await?;
-    daymark_engine::build::write_dictionary(&pipeline, &types, &out, mode).await?;
+    register_sources(&ctx, pipeline, reports).await?;
+    daymark_engine::build::write_dictionary(pipeline, types, out, mode).await?;
     let t0 = std::time::Instant::now();
     let log = crate::report::Report::new(&args.log_format);
     let tiled = args.engine == "tiled";
-    let layouts = daymark_engine::tiles::layouts(&pipeline);
+    let layouts = daymark_engine::tiles::layouts(pipeline);
     let mut plan: Option<daymark_engine::rollups::DayPlan> = None;
     if tiled {
         let t_tiles = std::time::Instant::now();
@@ -195,14 +247,14 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         // and months between). A range: the tiles of every day.
         let per_source = if days.len() == 1 {
             let (stats, day_plan) = daymark_engine::rollups::plan_day(
-                &ctx, &pipeline, &reports, &layouts, &out, days[0], mode,
+                &ctx, pipeline, reports, &layouts, out, days[0], mode,
             )
             .await
             .map_err(|e| memory_hint(e.into()))?;
             plan = Some(day_plan);
             stats
         } else {
-            daymark_engine::tiles::prepare(&ctx, &pipeline, &reports, &layouts, &out, &days, mode)
+            daymark_engine::tiles::prepare(&ctx, pipeline, reports, &layouts, out, days, mode)
                 .await
                 .map_err(|e| memory_hint(e.into()))?
         };
@@ -245,16 +297,16 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     }
     let mut rows = 0u64;
     let mut warnings = 0usize;
-    let staged_checks = daymark_audit::quality::DailyChecks::new(&pipeline, mode);
+    let staged_checks = daymark_audit::quality::DailyChecks::new(pipeline, mode);
     if tiled && days.len() > 1 {
         // A backfill: every day from one set-based query over the tiles.
         let mut done = 0usize;
         let result = daymark_engine::backfill::build_range(
             &ctx,
-            &pipeline,
+            pipeline,
             &layouts,
-            &out,
-            &days,
+            out,
+            days,
             mode,
             Some(&staged_checks),
             |r| {
@@ -276,10 +328,8 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
         // most of the roll-up time; docs/benchmarks.md, eleventh measurement).
         let t_roll = std::time::Instant::now();
         let next = days[days.len() - 1] + chrono::Duration::days(1);
-        match daymark_engine::rollups::plan_day(
-            &ctx, &pipeline, &reports, &layouts, &out, next, mode,
-        )
-        .await
+        match daymark_engine::rollups::plan_day(&ctx, pipeline, reports, &layouts, out, next, mode)
+            .await
         {
             Ok((stats, _)) => {
                 let built: u64 = stats.values().map(|s| s.rollups_built).sum();
@@ -295,15 +345,13 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     } else {
         for (i, day) in days.iter().enumerate() {
             let query = match &plan {
-                Some(p) => {
-                    daymark_engine::tiles::tiled_snapshot_query(&pipeline, &layouts, p, mode)
-                }
-                None => snapshot_query(&pipeline, *day, mode),
+                Some(p) => daymark_engine::tiles::tiled_snapshot_query(pipeline, &layouts, p, mode),
+                None => snapshot_query(pipeline, *day, mode),
             };
             match daymark_engine::build::build_day_checked(
                 &ctx,
-                &pipeline,
-                &out,
+                pipeline,
+                out,
                 *day,
                 mode,
                 &query.sql,

@@ -195,6 +195,46 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
         snapshot.display()
     );
     assert!(out_dir.join("snapshots/_features.json").exists());
+
+    // `build` takes the output lock that `run` and `watch` take: while another process
+    // holds it, nothing is built (exit code 12); an expired lock is taken over.
+    let lock = out_dir.join("_lock/owner.json");
+    let lock_text = |expires: &str| {
+        serde_json::json!({"owner": "20260101T000000.000000Z-1", "host": "another-host", "pid": 1,
+            "command": "run", "started": "2026-01-01T00:00:00+00:00", "expires": expires})
+        .to_string()
+    };
+    std::fs::create_dir_all(lock.parent().unwrap()).unwrap();
+    std::fs::write(&lock, lock_text("2999-01-01T00:00:00+00:00")).unwrap();
+    let held = daymark()
+        .args(["build", pipeline.to_str().unwrap(), "--date", "2026-03-29"])
+        .args(["--out", out_dir.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&held.stderr);
+    assert_eq!(held.status.code(), Some(12), "{stderr}");
+    assert!(
+        stderr.contains("another run holds the output lock: `daymark run` (run 20260101T000000.000000Z-1, process 1 on another-host"),
+        "{stderr}"
+    );
+    assert!(!out_dir.join("snapshots/dt=2026-03-29").exists());
+    std::fs::write(&lock, lock_text("2026-01-01T00:02:00+00:00")).unwrap();
+    let taken = daymark()
+        .args(["build", pipeline.to_str().unwrap(), "--date", "2026-03-29"])
+        .args(["--out", out_dir.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&taken.stderr);
+    assert_eq!(taken.status.code(), Some(0), "{stderr}");
+    assert!(
+        stderr.contains("took over the lock of `daymark run`")
+            && stderr.contains("its lease ended at 2026-01-01T00:02:00+00:00"),
+        "{stderr}"
+    );
+    assert!(out_dir
+        .join("snapshots/dt=2026-03-29/part-0.parquet")
+        .exists());
+    assert!(!lock.exists(), "the lock is released");
 }
 
 fn walk(dir: &Path) -> Vec<std::path::PathBuf> {
