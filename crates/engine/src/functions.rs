@@ -1,4 +1,5 @@
-//! daymark's own window functions: running totals and running extrema per partition.
+//! daymark's own window functions: running totals and running extrema per partition, and
+//! the first-copy marker of the tile build's de-duplication ([`FirstCopy`]).
 //!
 //! The set-based backfill (`backfill.rs`) needs, per key and in day order, the running
 //! sum of +x/-x contributions and the running minimum or maximum of a value. Written
@@ -300,11 +301,148 @@ pub fn running_functions() -> Vec<WindowUDF> {
         .collect()
 }
 
+/// Name of the first-copy window function.
+pub const FIRST_COPY: &str = "daymark_first_copy";
+
+/// `daymark_first_copy(a, b, ...) OVER (PARTITION BY p ORDER BY a, b, ..., arrival)`: TRUE
+/// on the first row of each run of rows with the same arguments (NULLs equal), FALSE on
+/// the copies after it. Sorted by the arguments and then arrival, TRUE marks each row's
+/// first-arrived copy: the tile build's de-duplication.
+///
+/// It replaces one `lag` per argument: DataFusion's streaming window operator asks for
+/// every row's value as a `ScalarValue`, which for `lag` of a text column copies the text
+/// (measured: the lags cost a quarter of the tile query, docs/benchmarks.md). This function
+/// compares the two rows in place and returns a boolean.
+#[derive(Debug, PartialEq, Eq, Hash)]
+pub struct FirstCopy {
+    signature: Signature,
+}
+
+impl Default for FirstCopy {
+    fn default() -> Self {
+        FirstCopy {
+            signature: Signature::variadic_any(Volatility::Immutable),
+        }
+    }
+}
+
+impl WindowUDFImpl for FirstCopy {
+    fn name(&self) -> &str {
+        FIRST_COPY
+    }
+
+    fn signature(&self) -> &Signature {
+        &self.signature
+    }
+
+    fn partition_evaluator(
+        &self,
+        _args: PartitionEvaluatorArgs,
+    ) -> Result<Box<dyn PartitionEvaluator>> {
+        Ok(Box::new(FirstCopyEvaluator))
+    }
+
+    fn field(&self, args: WindowUDFFieldArgs) -> Result<FieldRef> {
+        Ok(Arc::new(Field::new(args.name(), DataType::Boolean, false)))
+    }
+
+    fn limit_effect(&self, _args: &[Arc<dyn PhysicalExpr>]) -> LimitEffect {
+        LimitEffect::None
+    }
+}
+
+#[derive(Debug)]
+struct FirstCopyEvaluator;
+
+/// Whether rows `i` and `j` of `a` hold the same value (two NULLs are the same).
+fn same_value(a: &ArrayRef, i: usize, j: usize) -> Result<bool> {
+    use datafusion::arrow::datatypes as t;
+    match (a.is_null(i), a.is_null(j)) {
+        (true, true) => return Ok(true),
+        (true, false) | (false, true) => return Ok(false),
+        _ => {}
+    }
+    macro_rules! prim {
+        ($ty:ty) => {{
+            let p = a.as_primitive::<$ty>();
+            p.value(i) == p.value(j)
+        }};
+    }
+    Ok(match a.data_type() {
+        DataType::Utf8 => a.as_string::<i32>().value(i) == a.as_string::<i32>().value(j),
+        DataType::LargeUtf8 => a.as_string::<i64>().value(i) == a.as_string::<i64>().value(j),
+        DataType::Utf8View => a.as_string_view().value(i) == a.as_string_view().value(j),
+        DataType::Boolean => a.as_boolean().value(i) == a.as_boolean().value(j),
+        DataType::Int8 => prim!(t::Int8Type),
+        DataType::Int16 => prim!(t::Int16Type),
+        DataType::Int32 => prim!(t::Int32Type),
+        DataType::Int64 => prim!(Int64Type),
+        DataType::UInt8 => prim!(t::UInt8Type),
+        DataType::UInt16 => prim!(t::UInt16Type),
+        DataType::UInt32 => prim!(t::UInt32Type),
+        DataType::UInt64 => prim!(UInt64Type),
+        DataType::Date32 => prim!(t::Date32Type),
+        DataType::Decimal128(_, _) => prim!(Decimal128Type),
+        DataType::Timestamp(t::TimeUnit::Second, _) => prim!(t::TimestampSecondType),
+        DataType::Timestamp(t::TimeUnit::Millisecond, _) => prim!(t::TimestampMillisecondType),
+        DataType::Timestamp(t::TimeUnit::Microsecond, _) => prim!(t::TimestampMicrosecondType),
+        DataType::Timestamp(t::TimeUnit::Nanosecond, _) => prim!(t::TimestampNanosecondType),
+        // Anything else (floats, where NaN equals NaN as in IS NOT DISTINCT FROM;
+        // dictionaries, binary, nested types) compares as scalars.
+        _ => ScalarValue::try_from_array(a, i)? == ScalarValue::try_from_array(a, j)?,
+    })
+}
+
+impl PartitionEvaluator for FirstCopyEvaluator {
+    fn is_causal(&self) -> bool {
+        true
+    }
+
+    fn supports_bounded_execution(&self) -> bool {
+        true
+    }
+
+    /// The row before `idx` and `idx` itself: the streaming operator keeps the previous
+    /// row of each partition across batches.
+    fn get_range(&self, idx: usize, _n_rows: usize) -> Result<Range<usize>> {
+        Ok(idx.saturating_sub(1)..idx + 1)
+    }
+
+    fn evaluate(&mut self, values: &[ArrayRef], range: &Range<usize>) -> Result<ScalarValue> {
+        let Some(idx) = range.end.checked_sub(1) else {
+            return exec_err!("{FIRST_COPY}: an empty range");
+        };
+        if range.start == idx {
+            return Ok(ScalarValue::Boolean(Some(true)));
+        }
+        for v in values {
+            if !same_value(v, range.start, idx)? {
+                return Ok(ScalarValue::Boolean(Some(true)));
+            }
+        }
+        Ok(ScalarValue::Boolean(Some(false)))
+    }
+
+    fn evaluate_all(&mut self, values: &[ArrayRef], num_rows: usize) -> Result<ArrayRef> {
+        let mut out = datafusion::arrow::array::BooleanBuilder::with_capacity(num_rows);
+        for idx in 0..num_rows {
+            let ScalarValue::Boolean(b) =
+                self.evaluate(values, &(idx.saturating_sub(1)..idx + 1))?
+            else {
+                return exec_err!("{FIRST_COPY}: not a boolean");
+            };
+            out.append_option(b);
+        }
+        Ok(Arc::new(out.finish()))
+    }
+}
+
 /// Registers daymark's window functions in `ctx`.
 pub fn register(ctx: &SessionContext) {
     for f in running_functions() {
         ctx.register_udwf(f);
     }
+    ctx.register_udwf(WindowUDF::from(FirstCopy::default()));
 }
 
 #[cfg(test)]
@@ -397,6 +535,59 @@ mod tests {
         assert_eq!(col(0), vec![5, 2, 2, 12, 0]);
         assert_eq!(col(1), vec![5, -3, -3, -3, -12]);
         assert_eq!(col(2), vec![5, 5, 5, 10, 10]);
+    }
+
+    /// The first copy of each run of equal arguments, against the `lag` formulation it
+    /// replaced and against `ROW_NUMBER() = 1` per group of the arguments (both built into
+    /// DataFusion): batches of 3 rows put runs across batch boundaries; NULLs are equal.
+    #[tokio::test]
+    async fn first_copy_marks_the_first_row_of_each_run() {
+        let ctx = context().await;
+        ctx.sql(
+            "CREATE TABLE c (p VARCHAR, k VARCHAR, e BIGINT, a BIGINT) AS VALUES
+             ('x', 'a', 1, 10), ('x', 'a', 1, 11), ('x', 'a', 1, 12), ('x', 'a', 1, 13),
+             ('x', 'a', 2, 5), ('x', 'b', 2, 7), ('x', 'b', 2, 3), ('x', NULL, 2, 1),
+             ('x', NULL, 2, 2), ('x', NULL, NULL, 4), ('x', NULL, NULL, 9), ('y', 'a', 1, 1),
+             ('y', 'a', 1, 2), ('y', 'b', NULL, 6)",
+        )
+        .await
+        .unwrap()
+        .collect()
+        .await
+        .unwrap();
+        let over = "OVER (PARTITION BY p ORDER BY k, e, a)";
+        let mine = text(
+            &ctx,
+            &format!("SELECT p, k, e, a FROM (SELECT *, {FIRST_COPY}(k, e) {over} AS f FROM c) WHERE f ORDER BY p, k, e, a"),
+        )
+        .await;
+        let lags = text(
+            &ctx,
+            &format!("SELECT p, k, e, a FROM (SELECT *, lag(TRUE) {over} IS NULL OR NOT ((lag(k) {over} IS NOT DISTINCT FROM k) AND (lag(e) {over} IS NOT DISTINCT FROM e)) AS f FROM c) WHERE f ORDER BY p, k, e, a"),
+        )
+        .await;
+        let numbered = text(
+            &ctx,
+            "SELECT p, k, e, a FROM (SELECT *, ROW_NUMBER() OVER (PARTITION BY p, k, e ORDER BY a) AS n FROM c) WHERE n = 1 ORDER BY p, k, e, a",
+        )
+        .await;
+        assert_eq!(mine, lags);
+        assert_eq!(mine, numbered);
+        // By hand: (x,a,1) first at 10, (x,a,2) at 5, (x,b,2) at 3, (x,NULL,2) at 1,
+        // (x,NULL,NULL) at 4, (y,a,1) at 1, (y,b,NULL) at 6.
+        let arrivals: Vec<&str> = mine
+            .lines()
+            .skip(3)
+            .filter(|l| l.starts_with('|'))
+            .map(|l| l.split('|').nth(4).unwrap().trim())
+            .collect();
+        assert_eq!(arrivals, vec!["10", "5", "3", "1", "4", "1", "6"], "{mine}");
+        let plan = text(
+            &ctx,
+            &format!("EXPLAIN SELECT {FIRST_COPY}(k, e) {over} FROM c"),
+        )
+        .await;
+        assert!(plan.contains("BoundedWindowAggExec"), "{plan}");
     }
 
     /// They run in DataFusion's streaming window operator, so memory does not grow with a

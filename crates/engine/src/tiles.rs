@@ -227,13 +227,10 @@ fn rows_sql(
             "OVER (PARTITION BY __part ORDER BY {}, {order})",
             same.join(", ")
         );
-        let same: Vec<String> = same
-            .iter()
-            .map(|c| format!("(lag({c}) {over} IS NOT DISTINCT FROM {c})"))
-            .collect();
         format!(
-            "SELECT * FROM (SELECT *, lag(TRUE) {over} IS NULL OR NOT ({}) AS __first_copy FROM ({base})) WHERE __first_copy",
-            same.join(" AND ")
+            "SELECT * FROM (SELECT *, {}({}) {over} AS __first_copy FROM ({base})) WHERE __first_copy",
+            crate::functions::FIRST_COPY,
+            same.join(", ")
         )
     };
     let a = arr
