@@ -539,7 +539,15 @@ async fn build(
         "SELECT __part, __key, __part AS __lo, {} FROM ({from}) GROUP BY __part, __key ORDER BY __part",
         aggs.join(", ")
     );
-    crate::tiles::write_split(ctx, &sql, out, &dir(layout, pipeline, out, level), &firsts).await?;
+    crate::tiles::write_split(
+        ctx,
+        &sql,
+        out,
+        &dir(layout, pipeline, out, level),
+        &firsts,
+        &[],
+    )
+    .await?;
     for (i, _, _) in &layout.distinct {
         let sql = format!(
             "SELECT DISTINCT __part, __key, __part AS __lo, __v FROM ({}) ORDER BY __part",
@@ -551,6 +559,7 @@ async fn build(
             out,
             &distinct_dir(layout, out, *i, level),
             &firsts,
+            &[],
         )
         .await?;
     }

@@ -16,6 +16,7 @@ use crate::build::{child, BuildError};
 use crate::sources::SourceReport;
 use crate::sql::{day_of_sql, ident, literal};
 use chrono::NaiveDate;
+use datafusion::arrow::array::RecordBatch;
 use datafusion::arrow::datatypes::DataType;
 use datafusion::datasource::file_format::parquet::ParquetFormat;
 use datafusion::datasource::listing::{
@@ -269,6 +270,21 @@ pub fn tile_sql(
         None => "CAST(0 AS BIGINT) AS __ahead".to_string(),
     });
     cols.extend(layout.columns.iter().cloned());
+    // The values of each distinct-value tile, as a list per tile row: [`write_split`]
+    // writes them out as that tile's (key, t, a, value) rows, without duplicates, so the
+    // raw rows are read and de-duplicated once for all the tiles of a partition.
+    // (`array_agg(DISTINCT ...)` would keep one hash set per group; DataFusion 55 has no
+    // grouped accumulator for it.)
+    for (i, e, f) in &layout.distinct {
+        let wh = f
+            .as_ref()
+            .map(|f| format!(" AND ({f})"))
+            .unwrap_or_default();
+        cols.push(format!(
+            "array_agg({e}) FILTER (WHERE __key IS NOT NULL AND {e} IS NOT NULL{wh}) AS {}",
+            distinct_list_column(*i)
+        ));
+    }
     format!(
         "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part, __key",
         cols.join(", "),
@@ -276,8 +292,15 @@ pub fn tile_sql(
     )
 }
 
-/// The SQL of a distinct-value tile of partitions `days`, ordered by partition and key
-/// (`names_are_dates` as for [`tile_sql`]).
+/// The column of [`tile_sql`] holding, per tile row, the values of distinct-value tile
+/// `feature`.
+fn distinct_list_column(feature: usize) -> String {
+    format!("__dv{feature}")
+}
+
+/// What a distinct-value tile of partitions `days` holds, as SQL: [`tile_sql`] computes it
+/// (its `__dv` lists) and this query gives the files' schema (`names_are_dates` as for
+/// [`tile_sql`]).
 pub fn distinct_sql(
     pipeline: &Pipeline,
     source: &Source,
@@ -307,12 +330,17 @@ pub fn distinct_sql(
 /// `__part`, each sorted), they are written side by side instead of merged into one
 /// stream first: the merge would let only one of them run at a time, and one writer
 /// would encode every file.
+///
+/// Each of `lists` names a list column of the query (one list per row, ordered by nothing)
+/// written instead to its own day files as rows of (`__key`, `__t`, `__a`, value), each
+/// value once per row, with the given schema (the distinct-value tiles).
 pub(crate) async fn write_split(
     ctx: &SessionContext,
     sql: &str,
     out: &Location,
     dir: &StorePath,
     days: &[NaiveDate],
+    lists: &[ListOutput],
 ) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
     let first = days[0];
     let engine = |source| BuildError::Engine { day: first, source };
@@ -332,8 +360,38 @@ pub(crate) async fn write_split(
     let plan = state.create_physical_plan(&logical).await.map_err(engine)?;
     let task = state.task_ctx();
     let full = plan.schema();
-    let keep: Vec<usize> = (1..full.fields().len()).collect();
+    let mut outputs = Vec::new();
+    for l in lists {
+        let index = |name: &str| full.index_of(name).map_err(|e| engine(e.into()));
+        outputs.push(Output {
+            shape: Shape::Unnest {
+                list: index(&l.column)?,
+                parents: [index("__key")?, index("__t")?, index("__a")?],
+            },
+            dir: l.dir.clone(),
+            schema: l.schema.clone(),
+        });
+    }
+    let listed: BTreeSet<usize> = outputs
+        .iter()
+        .filter_map(|o| match o.shape {
+            Shape::Unnest { list, .. } => Some(list),
+            Shape::Columns(_) => None,
+        })
+        .collect();
+    let keep: Vec<usize> = (1..full.fields().len())
+        .filter(|i| !listed.contains(i))
+        .collect();
     let schema = Arc::new(full.project(&keep).map_err(|e| engine(e.into()))?);
+    outputs.insert(
+        0,
+        Output {
+            shape: Shape::Columns(keep),
+            dir: dir.clone(),
+            schema: schema.clone(),
+        },
+    );
+    let outputs = Arc::new(outputs);
     let streams = match whole_partitions_per_stream(&plan) {
         Some(input) => (0
             ..datafusion::physical_plan::ExecutionPlanProperties::output_partitioning(&input)
@@ -348,10 +406,8 @@ pub(crate) async fn write_split(
         .into_iter()
         .map(|stream| {
             let split = Split {
-                keep: keep.clone(),
-                schema: schema.clone(),
+                outputs: outputs.clone(),
                 out: out.clone(),
-                dir: dir.clone(),
                 allowed: allowed.clone(),
                 first,
             };
@@ -387,19 +443,101 @@ pub(crate) async fn write_split(
     if let Some(e) = failed {
         return Err(e);
     }
-    let path = |d: NaiveDate| child(dir, &[&format!("dt={d}"), "part-0.parquet"]);
     for day in pending {
-        crate::build::DayWriter::direct(
-            out,
-            path(day),
-            day,
-            schema.clone(),
-            crate::build::tile_writer_properties(),
-        )?
-        .finish(None)
-        .await?;
+        for o in outputs.iter() {
+            o.writer(out, day)?.finish(None).await?;
+        }
     }
     Ok(ignored)
+}
+
+/// A list column of a [`write_split`] query written out as rows of its own files.
+pub(crate) struct ListOutput {
+    /// The list column.
+    pub column: String,
+    /// Folder of its day files.
+    pub dir: StorePath,
+    /// Schema of its files: `__key`, `__t`, `__a`, then the values' column.
+    pub schema: datafusion::arrow::datatypes::SchemaRef,
+}
+
+/// How an output's rows come from the query's rows.
+enum Shape {
+    /// These columns, row for row.
+    Columns(Vec<usize>),
+    /// One row per distinct value of list column `list`, with the row's `parents` columns.
+    Unnest { list: usize, parents: [usize; 3] },
+}
+
+/// One set of day files [`write_split`] writes.
+struct Output {
+    shape: Shape,
+    dir: StorePath,
+    schema: datafusion::arrow::datatypes::SchemaRef,
+}
+
+impl Output {
+    fn writer(
+        &self,
+        out: &Location,
+        day: NaiveDate,
+    ) -> Result<crate::build::DayWriter, BuildError> {
+        crate::build::DayWriter::direct(
+            out,
+            child(&self.dir, &[&format!("dt={day}"), "part-0.parquet"]),
+            day,
+            self.schema.clone(),
+            crate::build::tile_writer_properties(),
+        )
+    }
+
+    /// Rows `run` of `batch` as this output's rows. `encoded`: the list column's values
+    /// in arrow's row format (compared as bytes to drop repeated values of one row).
+    fn rows(
+        &self,
+        batch: &RecordBatch,
+        run: std::ops::Range<usize>,
+        encoded: Option<&datafusion::arrow::row::Rows>,
+    ) -> datafusion::error::Result<RecordBatch> {
+        use datafusion::arrow::array::{Array, AsArray, UInt32Array};
+        use datafusion::arrow::compute::{cast, take};
+        match &self.shape {
+            Shape::Columns(keep) => Ok(batch.project(keep)?.slice(run.start, run.len())),
+            Shape::Unnest { list, parents } => {
+                let lists = batch.column(*list).as_list::<i32>();
+                let offsets = lists.value_offsets();
+                let (mut parent, mut value) = (Vec::new(), Vec::new());
+                let mut one: Vec<u32> = Vec::new();
+                for r in run {
+                    if lists.is_null(r) {
+                        continue;
+                    }
+                    one.clear();
+                    one.extend(offsets[r] as u32..offsets[r + 1] as u32);
+                    if let Some(rows) = encoded {
+                        one.sort_unstable_by(|a, b| {
+                            rows.row(*a as usize).cmp(&rows.row(*b as usize))
+                        });
+                        one.dedup_by(|a, b| rows.row(*a as usize) == rows.row(*b as usize));
+                    }
+                    parent.extend(std::iter::repeat_n(r as u32, one.len()));
+                    value.extend_from_slice(&one);
+                }
+                let (parent, value) = (UInt32Array::from(parent), UInt32Array::from(value));
+                let mut columns = Vec::with_capacity(4);
+                for c in parents {
+                    columns.push(take(batch.column(*c), &parent, None)?);
+                }
+                columns.push(take(lists.values(), &value, None)?);
+                let columns = columns
+                    .iter()
+                    .zip(self.schema.fields())
+                    .map(|(c, f)| cast(c, f.data_type()))
+                    .collect::<std::result::Result<Vec<_>, _>>()?;
+                Ok(RecordBatch::try_new(self.schema.clone(), columns)?)
+            }
+        }
+    }
 }
 
 /// The input of `plan`'s final merge when each of its streams holds whole `__part`
@@ -425,10 +563,9 @@ fn whole_partitions_per_stream(
 
 /// One stream of [`write_split`]: its rows, split into day files as they come.
 struct Split {
-    keep: Vec<usize>,
-    schema: datafusion::arrow::datatypes::SchemaRef,
+    /// The main files first, then the unnested lists.
+    outputs: Arc<Vec<Output>>,
     out: Location,
-    dir: StorePath,
     allowed: Arc<BTreeSet<NaiveDate>>,
     first: NaiveDate,
 }
@@ -439,16 +576,17 @@ impl Split {
         self,
         mut stream: datafusion::execution::SendableRecordBatchStream,
     ) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
-        let mut current: Option<crate::build::DayWriter> = None;
+        // The writers of the day being written, one per output.
+        let mut current: Vec<crate::build::DayWriter> = Vec::new();
         let mut done = BTreeMap::new();
         let streamed = self.stream_into(&mut stream, &mut current, &mut done).await;
         if let Err(e) = streamed {
-            if let Some(w) = current.take() {
+            for w in current {
                 w.abandon().await;
             }
             return Err(e);
         }
-        if let Some(w) = current.take() {
+        for w in current {
             w.finish(None).await?;
         }
         Ok(done)
@@ -457,7 +595,7 @@ impl Split {
     async fn stream_into(
         &self,
         stream: &mut datafusion::execution::SendableRecordBatchStream,
-        current: &mut Option<crate::build::DayWriter>,
+        current: &mut Vec<crate::build::DayWriter>,
         done: &mut BTreeMap<NaiveDate, Ignored>,
     ) -> Result<(), BuildError> {
         use datafusion::arrow::array::{Array, AsArray};
@@ -468,13 +606,36 @@ impl Split {
             source,
         };
         let internal = |text: String| engine(datafusion::error::DataFusionError::Internal(text));
-        let counted = ["__key", "__rows", "__ahead"].map(|c| self.schema.index_of(c).ok());
+        let main = &self.outputs[0];
+        let counted = ["__key", "__rows", "__ahead"].map(|c| main.schema.index_of(c).ok());
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine)?;
             let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Utf8)
                 .map_err(|e| engine(e.into()))?;
             let parts = parts.as_string::<i32>();
-            let body = batch.project(&self.keep).map_err(|e| engine(e.into()))?;
+            let body = match &main.shape {
+                Shape::Columns(keep) => batch.project(keep).map_err(|e| engine(e.into()))?,
+                Shape::Unnest { .. } => return Err(internal("the main tile is unnested".into())),
+            };
+            // Each list column's values in arrow's row format, to find repeated values.
+            let mut encoded = Vec::with_capacity(self.outputs.len());
+            for o in self.outputs.iter() {
+                encoded.push(match o.shape {
+                    Shape::Unnest { list, .. } => {
+                        let values = batch.column(list).as_list::<i32>().values().clone();
+                        let converter = datafusion::arrow::row::RowConverter::new(vec![
+                            datafusion::arrow::row::SortField::new(values.data_type().clone()),
+                        ])
+                        .map_err(|e| engine(e.into()))?;
+                        Some(
+                            converter
+                                .convert_columns(&[values])
+                                .map_err(|e| engine(e.into()))?,
+                        )
+                    }
+                    Shape::Columns(_) => None,
+                });
+            }
             for run in
                 crate::build::equal_runs(batch.num_rows(), |a, b| parts.value(a) == parts.value(b))
             {
@@ -482,8 +643,8 @@ impl Split {
                 let day: NaiveDate = text
                     .parse()
                     .map_err(|_| internal(format!("tile partition {text:?} is not a date")))?;
-                if current.as_ref().map(|w| w.day()) != Some(day) {
-                    if let Some(w) = current.take() {
+                if current.first().map(|w| w.day()) != Some(day) {
+                    for w in current.drain(..) {
                         w.finish(None).await?;
                     }
                     if !self.allowed.contains(&day) || done.contains_key(&day) {
@@ -492,13 +653,9 @@ impl Split {
                         )));
                     }
                     done.insert(day, Ignored::default());
-                    *current = Some(crate::build::DayWriter::direct(
-                        &self.out,
-                        child(&self.dir, &[&format!("dt={day}"), "part-0.parquet"]),
-                        day,
-                        self.schema.clone(),
-                        crate::build::tile_writer_properties(),
-                    )?);
+                    for o in self.outputs.iter() {
+                        current.push(o.writer(&self.out, day)?);
+                    }
                 }
                 if let [Some(k), Some(r), Some(a)] = counted {
                     let (key, rows, ahead) = (body.column(k), body.column(r), body.column(a));
@@ -515,8 +672,11 @@ impl Split {
                         }
                     }
                 }
-                if let Some(w) = current.as_mut() {
-                    w.write(&body.slice(run.start, run.len())).await?;
+                for ((o, w), enc) in self.outputs.iter().zip(current.iter_mut()).zip(&encoded) {
+                    let rows = o.rows(&batch, run.clone(), enc.as_ref()).map_err(engine)?;
+                    if rows.num_rows() > 0 {
+                        w.write(&rows).await?;
+                    }
                 }
             }
         }
@@ -797,6 +957,30 @@ pub async fn ensure_tiles(
         batches.push(&rest[..n]);
         rest = &rest[n..];
     }
+    // The files' schema of each distinct-value tile, from planning the query that
+    // defines its rows.
+    let mut lists = Vec::new();
+    if let Some((first, _, _)) = stale.first() {
+        for (i, expr, filter) in &layout.distinct {
+            let sql = distinct_sql(pipeline, source, expr, filter, &[*first], names_are_dates);
+            let engine = |e| BuildError::Engine {
+                day: *first,
+                source: e,
+            };
+            let plan = ctx
+                .state()
+                .create_logical_plan(&sql)
+                .await
+                .map_err(engine)?;
+            let full = plan.schema().as_arrow();
+            let keep: Vec<usize> = (1..full.fields().len()).collect();
+            lists.push(ListOutput {
+                column: distinct_list_column(*i),
+                dir: layout.distinct_dir(out, *i),
+                schema: Arc::new(full.project(&keep).map_err(|e| engine(e.into()))?),
+            });
+        }
+    }
     for batch in batches {
         let batch_days: Vec<NaiveDate> = batch.iter().map(|(d, _, _)| *d).collect();
         let counted = write_split(
@@ -805,18 +989,9 @@ pub async fn ensure_tiles(
             out,
             &layout.dir(out),
             &batch_days,
+            &lists,
         )
         .await?;
-        for (i, expr, filter) in &layout.distinct {
-            write_split(
-                ctx,
-                &distinct_sql(pipeline, source, expr, filter, &batch_days, names_are_dates),
-                out,
-                &layout.distinct_dir(out, *i),
-                &batch_days,
-            )
-            .await?;
-        }
         crate::session::release_free_memory();
         // Markers are written last (a crash before one leaves its tile to be rebuilt), many
         // at once: each is a small object, and one at a time they took ~4 ms each, seconds
