@@ -185,7 +185,7 @@ def main():
     n = args.backfill
     limit = f"  (--memory-limit {args.memory_limit})" if args.memory_limit else ""
     print(f"{n}-day backfill, daymark tiled: {b_secs:8.1f} s  {events / b_secs:12.0f} events/s  peak {b_rss:6.0f} MiB{limit}")
-    print(f"{n}-day backfill, DuckDB SQL:    {k_secs:8.1f} s  {events / k_secs:12.0f} events/s  peak {k_rss:6.0f} MiB")
+    print(f"{n}-day backfill, DuckDB {duckdb.__version__} SQL: {k_secs:8.1f} s  {events / k_secs:12.0f} events/s  peak {k_rss:6.0f} MiB")
     print(f"I/O floor (DataFusion scan + write {out_rows} rows): {f_secs:8.1f} s")
     print(f"daily build (next day), daymark: {d_secs:8.1f} s  peak {d_rss:6.0f} MiB  (longest window {args.long} d)")
     print(f"daily build, longest window 365 d: {d365_secs:6.1f} s  ratio 365/{args.long}: {d365_secs / d_secs:.2f}")
