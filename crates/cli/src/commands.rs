@@ -299,11 +299,13 @@ async fn build_locked(
     let mut warnings = 0usize;
     let staged_checks = daymark_audit::quality::DailyChecks::new(pipeline, mode);
     if tiled && days.len() > 1 {
-        // A backfill: every day from one set-based query over the tiles.
+        // A backfill: every day from one set-based query over the tiles, or day by day
+        // from pieces where that is cheaper (`build_days`).
         let mut done = 0usize;
-        let result = daymark_engine::backfill::build_range(
+        let result = daymark_engine::backfill::build_days(
             &ctx,
             pipeline,
+            reports,
             &layouts,
             out,
             days,

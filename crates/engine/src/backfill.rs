@@ -986,6 +986,137 @@ pub fn range_query(
     finish(pipeline, &ctes, &layer0, &joins, "snapshot_date, ")
 }
 
+/// Tile rows of the sources' history per snapshot day below which a range is built
+/// day by day. The general set-based query carries every tile row the range reads
+/// through its running values, whatever the range's length: a fixed cost of about 5.7 µs
+/// per tile row (measured with the demo pipeline: 200 s over the 35M tile rows of the
+/// 10-million-event benchmark world, 8 s over the 1.4M of the 4,000-customer demo world).
+/// A day from its pieces costs about 0.5 s more than a day of the set-based query on the
+/// demo world and about 1 s less on the benchmark world, so day by day wins below about
+/// 16 days there and for any range here (docs/benchmarks.md, fourteenth measurement).
+pub const TILE_ROWS_PER_DAY_BY_DAY: u64 = 90_000;
+
+/// The longest range of `first..=last`'s kind that [`build_days`] builds day by day:
+/// [`tile_rows_read`] over [`TILE_ROWS_PER_DAY_BY_DAY`] (or the session's
+/// [`crate::session::TileRowsPerDayByDay`]).
+pub async fn day_by_day_limit(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+) -> datafusion::error::Result<u64> {
+    let per_day = ctx
+        .state()
+        .config()
+        .get_extension::<crate::session::TileRowsPerDayByDay>()
+        .map_or(TILE_ROWS_PER_DAY_BY_DAY, |n| n.0);
+    Ok(tile_rows_read(ctx, pipeline, layouts, first, last, mode).await? / per_day)
+}
+
+/// The tile rows (main and distinct-value tiles of every source) that the set-based query
+/// of `first..=last` reads, counted from the tile files' statistics.
+pub async fn tile_rows_read(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+) -> datafusion::error::Result<u64> {
+    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
+    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
+    let mut rows = 0u64;
+    for (name, l) in layouts {
+        let Some(read) = reads_last.get(name) else {
+            continue;
+        };
+        let first_day = reads_first.get(name).and_then(|r| r.first_day);
+        let conds = crate::tiles::partitions_between(first_day, read.last_day).join(" AND ");
+        let tables = std::iter::once(l.table())
+            .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
+        for t in tables {
+            if !ctx.table_exist(t.as_str())? {
+                continue;
+            }
+            // Only partition conditions: the count comes from file statistics.
+            let sql = format!("SELECT COUNT(*) FROM {} WHERE {conds}", ident(&t));
+            for b in ctx.sql(&sql).await?.collect().await? {
+                let n = b
+                    .column(0)
+                    .as_primitive::<datafusion::arrow::datatypes::Int64Type>();
+                rows += n.iter().flatten().sum::<i64>() as u64;
+            }
+        }
+    }
+    Ok(rows)
+}
+
+/// Builds and publishes every snapshot of `days` (consecutive, tiles prepared) the
+/// cheaper of two ways, telling `on_day` of each published day:
+///
+/// - all days from one set-based query ([`build_range`]) when the pipeline's aggregates
+///   are all windowed totals ([`direct_features`]), or when the range is longer than
+///   [`day_by_day_limit`];
+/// - else one day at a time from its pieces (tiles at its windows' edges, week and month
+///   roll-ups between; [`crate::rollups::plan_day`]), as a daily build does.
+#[allow(clippy::too_many_arguments)]
+pub async fn build_days(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    reports: &BTreeMap<String, crate::sources::SourceReport>,
+    layouts: &BTreeMap<String, TileLayout>,
+    out: &Location,
+    days: &[NaiveDate],
+    mode: KnowledgeOverride,
+    staged_check: Option<&dyn StagedCheck>,
+    mut on_day: impl FnMut(&DayReport),
+) -> Result<Vec<DayReport>, BuildError> {
+    let (Some(&first), Some(&last)) = (days.first(), days.last()) else {
+        return Ok(Vec::new());
+    };
+    let set_based = days.len() > 1
+        && (direct_features(pipeline, &tile_types(ctx, layouts).await)
+            || days.len() as u64
+                > day_by_day_limit(ctx, pipeline, layouts, first, last, mode)
+                    .await
+                    .map_err(|source| BuildError::Engine { day: first, source })?);
+    if set_based {
+        return build_range(
+            ctx,
+            pipeline,
+            layouts,
+            out,
+            days,
+            mode,
+            staged_check,
+            on_day,
+        )
+        .await;
+    }
+    let mut built = Vec::with_capacity(days.len());
+    for &day in days {
+        let (_, plan) =
+            crate::rollups::plan_day(ctx, pipeline, reports, layouts, out, day, mode).await?;
+        let query = crate::tiles::tiled_snapshot_query(pipeline, layouts, &plan, mode);
+        let report = crate::build::build_day_checked(
+            ctx,
+            pipeline,
+            out,
+            day,
+            mode,
+            &query.sql,
+            Some((layouts, &plan)),
+            staged_check,
+        )
+        .await?;
+        on_day(&report);
+        built.push(report);
+    }
+    Ok(built)
+}
+
 /// Builds and publishes every snapshot of `days` (consecutive) from one query, each day
 /// through its own staging file, checks (expectations, then `staged_check`), provenance
 /// in the footer, and rename. `on_day` is told of each published

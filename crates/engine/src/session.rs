@@ -21,11 +21,18 @@ pub struct EngineOptions {
     /// backfill is cut into ranges of keys (default: what `memory_limit` holds; see
     /// [`crate::backfill`]).
     pub backfill_rows_per_query: Option<u64>,
+    /// Tile rows read per day below which a range of a general pipeline is built day by
+    /// day (default: [`crate::backfill::TILE_ROWS_PER_DAY_BY_DAY`]).
+    pub tile_rows_per_day_by_day: Option<u64>,
 }
 
 /// [`EngineOptions::backfill_rows_per_query`], kept in the session's configuration.
 #[derive(Debug, Clone, Copy)]
 pub struct BackfillRowsPerQuery(pub u64);
+
+/// [`EngineOptions::tile_rows_per_day_by_day`], kept in the session's configuration.
+#[derive(Debug, Clone, Copy)]
+pub struct TileRowsPerDayByDay(pub u64);
 
 /// A session with the given limits and daymark's window functions
 /// ([`crate::functions`]). Spill files go to the system's temporary folder.
@@ -58,6 +65,9 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     }
     if let Some(n) = opts.backfill_rows_per_query {
         config = config.with_extension(Arc::new(BackfillRowsPerQuery(n.max(1))));
+    }
+    if let Some(n) = opts.tile_rows_per_day_by_day {
+        config = config.with_extension(Arc::new(TileRowsPerDayByDay(n.max(1))));
     }
     let (pool_limit, metadata_cache) = split_limit(opts.memory_limit);
     let mut runtime = RuntimeEnvBuilder::new()

@@ -8,7 +8,8 @@ use arrow::datatypes::{DataType, Float64Type};
 use arrow::util::display::array_value_to_string;
 use chrono::NaiveDate;
 use daymark_engine::backfill::{
-    build_range, direct_features, key_ranges, range_query, tile_types, KeyRange,
+    build_days, day_by_day_limit, direct_features, key_ranges, range_query, tile_rows_read,
+    tile_types, KeyRange,
 };
 use daymark_engine::rollups::{plan_day, Level};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
@@ -132,9 +133,47 @@ fn assert_same(a: &RecordBatch, b: &RecordBatch, what: &str) {
     }
 }
 
-/// `build_range` in a session with a memory limit and a small working set per query (so
-/// the range is cut into ranges of keys, each spilled and merged back by day) publishes,
-/// for each day, the rows of the one-query result `all`.
+/// Rows of the Parquet files under `dir` and its sub-folders, from their footers.
+fn parquet_rows_under(dir: &str) -> u64 {
+    let mut rows = 0;
+    let Ok(entries) = std::fs::read_dir(dir) else {
+        return 0;
+    };
+    for e in entries.flatten() {
+        let p = e.path();
+        if p.is_dir() {
+            rows += parquet_rows_under(p.to_str().unwrap());
+        } else if p.extension().is_some_and(|x| x == "parquet") {
+            let file = std::fs::File::open(&p).unwrap();
+            let reader = parquet::file::reader::SerializedFileReader::new(file).unwrap();
+            use parquet::file::reader::FileReader;
+            rows += reader.metadata().file_metadata().num_rows() as u64;
+        }
+    }
+    rows
+}
+
+/// The published snapshots of `days` in `out` hold the rows of `all` of their day.
+fn read_back(out: &daymark_store::Location, days: &[NaiveDate], all: &RecordBatch, what: &str) {
+    for d in days {
+        let path = daymark_engine::build::snapshot_path(out, None, *d);
+        let file =
+            std::fs::File::open(format!("/{path}")).unwrap_or_else(|e| panic!("{path}: {e}"));
+        let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
+            .unwrap()
+            .build()
+            .unwrap();
+        let batches: Vec<RecordBatch> = reader.map(Result::unwrap).collect();
+        let expected = rows_of_day(all, *d);
+        let got = concat_batches(&expected.schema(), &batches).unwrap();
+        assert_same(&expected, &got, &format!("{what} {d}"));
+    }
+}
+
+/// `build_days` in a session with a memory limit and a small working set per query: a
+/// range longer than its day-by-day limit is cut into ranges of keys, each spilled and
+/// merged back by day, a short one is built day by day; both publish, for each day, the
+/// rows of the one-query result `all`.
 async fn range_under_memory_limit(
     pipeline: &daymark_spec::Pipeline,
     reports: &std::collections::BTreeMap<String, daymark_engine::SourceReport>,
@@ -157,10 +196,50 @@ async fn range_under_memory_limit(
         stats.values().all(|s| s.partitions_built == 0),
         "tiles reused"
     );
-    let mut published = 0;
-    let day_reports = build_range(&ctx, pipeline, ls, out, days, None, None, |_| {
-        published += 1
+    // `build_days` builds a range day by day up to its limit (the tile rows the set-based
+    // query would read over a number of rows per day), longer ones set-based. This world
+    // is small, so a session is told a third of the rows a 3-day range reads.
+    let (first, last) = (days[0], *days.last().unwrap());
+    let short = &days[..3];
+    let rows = tile_rows_read(&ctx, pipeline, ls, first, short[2], None)
+        .await
+        .unwrap();
+    // At most every tile row on disk (a range reads partitions up to its last day).
+    let on_disk: u64 = ls
+        .values()
+        .flat_map(|l| {
+            std::iter::once(l.dir(out))
+                .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_dir(out, *i)))
+        })
+        .map(|d| parquet_rows_under(&format!("/{d}")))
+        .sum();
+    assert!(rows > 3_000 && rows <= on_disk, "{rows} of {on_disk}");
+    let by_day_ctx = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
+        tile_rows_per_day_by_day: Some(rows / 3),
+        ..opts
     })
+    .unwrap();
+    register_sources(&by_day_ctx, pipeline, reports)
+        .await
+        .unwrap();
+    prepare(&by_day_ctx, pipeline, reports, ls, out, days, None)
+        .await
+        .unwrap();
+    let limit = |last| day_by_day_limit(&by_day_ctx, pipeline, ls, first, last, None);
+    assert_eq!(limit(short[2]).await.unwrap(), 3);
+    assert!(limit(last).await.unwrap() < days.len() as u64);
+    let mut published = 0;
+    let day_reports = build_days(
+        &by_day_ctx,
+        pipeline,
+        reports,
+        ls,
+        out,
+        days,
+        None,
+        None,
+        |_| published += 1,
+    )
     .await
     .unwrap();
     assert_eq!(published, days.len());
@@ -169,19 +248,23 @@ async fn range_under_memory_limit(
         "{:?}",
         day_reports[0]
     );
-    for d in days {
-        let path = daymark_engine::build::snapshot_path(out, None, *d);
-        let file =
-            std::fs::File::open(format!("/{path}")).unwrap_or_else(|e| panic!("{path}: {e}"));
-        let reader = parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder::try_new(file)
-            .unwrap()
-            .build()
-            .unwrap();
-        let batches: Vec<RecordBatch> = reader.map(Result::unwrap).collect();
-        let expected = rows_of_day(all, *d);
-        let got = concat_batches(&expected.schema(), &batches).unwrap();
-        assert_same(&expected, &got, &format!("memory-limited build {d}"));
-    }
+    read_back(out, days, all, "memory-limited build");
+    let by_day = build_days(
+        &by_day_ctx,
+        pipeline,
+        reports,
+        ls,
+        out,
+        short,
+        None,
+        None,
+        |_| {},
+    )
+    .await
+    .unwrap();
+    assert_eq!(by_day.len(), short.len());
+    assert!(by_day.iter().all(|r| r.queries == 1), "{:?}", by_day[0]);
+    read_back(out, short, all, "day by day");
     // The daily build of the last day under the limit builds its week and month roll-ups
     // one span per query (the days after reuse them without a limit, checked against the
     // naive path there) and gives the same rows.

@@ -23,9 +23,9 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-/// Most consecutive snapshot days one set-based query builds in a run: long enough that
-/// the per-query cost is shared, short enough that a stop or a lost lock is seen within
-/// minutes.
+/// Most consecutive snapshot days built together in a run (one set-based query where the
+/// pipeline takes it): long enough that the per-query cost is shared, short enough that a
+/// stop or a lost lock is seen within minutes.
 const DAYS_PER_RANGE: usize = 31;
 
 /// What to run.
@@ -493,8 +493,8 @@ async fn build_days(
     let scope = plan::scope_of(opts.mode);
     // Population change and drift checks on every snapshot, as `daymark build` runs them.
     let checks = daymark_audit::quality::DailyChecks::new(pipeline, opts.mode);
-    // Consecutive days are built together by one set-based query (as `daymark build`
-    // does for a range), in runs short enough that a stop or a lost lock is noticed soon.
+    // Consecutive days are built together (as `daymark build` builds a range), in runs
+    // short enough that a stop or a lost lock is noticed soon.
     let new_entry = |day: NaiveDate| {
         let mut entry = Entry::new(Kind::Snapshot, day, scope, pipeline, me);
         entry.inputs = plan::inputs_of(pipeline, &listings, day, opts.mode);
@@ -530,46 +530,21 @@ async fn build_days(
             });
             reports.push(r.clone());
         };
-        let result = if run.len() == 1 {
-            // One day reads its pieces: tiles at its windows' edges, roll-ups between.
-            match daymark_engine::rollups::plan_day(
-                &ctx, pipeline, sources, &layouts, out, run[0], opts.mode,
-            )
-            .await
-            {
-                Ok((_, day_plan)) => {
-                    let query = daymark_engine::tiles::tiled_snapshot_query(
-                        pipeline, &layouts, &day_plan, opts.mode,
-                    );
-                    daymark_engine::build::build_day_checked(
-                        &ctx,
-                        pipeline,
-                        out,
-                        run[0],
-                        opts.mode,
-                        &query.sql,
-                        Some((&layouts, &day_plan)),
-                        Some(&checks),
-                    )
-                    .await
-                    .map(|r| on_day(&r))
-                }
-                Err(e) => Err(e),
-            }
-        } else {
-            daymark_engine::backfill::build_range(
-                &ctx,
-                pipeline,
-                &layouts,
-                out,
-                run,
-                opts.mode,
-                Some(&checks),
-                &mut on_day,
-            )
-            .await
-            .map(|_| ())
-        };
+        // One day reads its pieces (tiles at its windows' edges, roll-ups between); a run
+        // of days is one set-based query where that is cheaper (`build_days`).
+        let result = daymark_engine::backfill::build_days(
+            &ctx,
+            pipeline,
+            sources,
+            &layouts,
+            out,
+            run,
+            opts.mode,
+            Some(&checks),
+            &mut on_day,
+        )
+        .await
+        .map(|_| ());
         // Ledger entries of the days published, in order.
         for report in &reports {
             let mut entry = new_entry(report.day);
