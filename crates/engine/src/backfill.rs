@@ -171,6 +171,36 @@ fn work_rows_per_query(ctx: &SessionContext, direct: bool) -> u64 {
     }
 }
 
+/// The tile tables (main and distinct-value, of every source) that the set-based query of
+/// `first..=last` reads, each with the SQL conditions on `dt` selecting its partitions.
+fn tile_tables_read(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+) -> datafusion::error::Result<Vec<(String, Vec<String>)>> {
+    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
+    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
+    let mut out = Vec::new();
+    for (name, l) in layouts {
+        let Some(read) = reads_last.get(name) else {
+            continue;
+        };
+        let first_day = reads_first.get(name).and_then(|r| r.first_day);
+        let conds = crate::tiles::partitions_between(first_day, read.last_day);
+        let tables = std::iter::once(l.table())
+            .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
+        for t in tables {
+            if ctx.table_exist(t.as_str())? {
+                out.push((t, conds.clone()));
+            }
+        }
+    }
+    Ok(out)
+}
+
 /// Cuts the keys of the backfill `first..=last` into ranges of about `rows` working-set
 /// rows each: per key, its tile rows in the partitions the range reads plus one row per
 /// snapshot day (the most its spine can have). One range when all fits, or when keys are
@@ -184,28 +214,16 @@ pub async fn key_ranges(
     mode: KnowledgeOverride,
     rows: u64,
 ) -> datafusion::error::Result<Vec<KeyRange>> {
-    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
-    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
-    let mut counts = Vec::new();
-    for (name, l) in layouts {
-        let Some(read) = reads_last.get(name) else {
-            continue;
-        };
-        let first_day = reads_first.get(name).and_then(|r| r.first_day);
-        let mut conds = vec!["__key IS NOT NULL".to_string()];
-        conds.extend(crate::tiles::partitions_between(first_day, read.last_day));
-        let tables = std::iter::once(l.table())
-            .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
-        for t in tables {
-            if ctx.table_exist(t.as_str())? {
-                counts.push(format!(
-                    "SELECT __key, COUNT(*) AS __n FROM {} WHERE {} GROUP BY __key",
-                    ident(&t),
-                    conds.join(" AND ")
-                ));
-            }
-        }
-    }
+    let counts: Vec<String> = tile_tables_read(ctx, pipeline, layouts, first, last, mode)?
+        .into_iter()
+        .map(|(t, conds)| {
+            format!(
+                "SELECT __key, COUNT(*) AS __n FROM {} WHERE __key IS NOT NULL AND {} GROUP BY __key",
+                ident(&t),
+                conds.join(" AND ")
+            )
+        })
+        .collect();
     if counts.is_empty() {
         return Ok(vec![KeyRange::all()]);
     }
@@ -1025,29 +1043,19 @@ pub async fn tile_rows_read(
     last: NaiveDate,
     mode: KnowledgeOverride,
 ) -> datafusion::error::Result<u64> {
-    let reads_first = crate::sql::snapshot_query(pipeline, first, mode).reads;
-    let reads_last = crate::sql::snapshot_query(pipeline, last, mode).reads;
     let mut rows = 0u64;
-    for (name, l) in layouts {
-        let Some(read) = reads_last.get(name) else {
-            continue;
-        };
-        let first_day = reads_first.get(name).and_then(|r| r.first_day);
-        let conds = crate::tiles::partitions_between(first_day, read.last_day).join(" AND ");
-        let tables = std::iter::once(l.table())
-            .chain(l.distinct.iter().map(|(i, _, _)| l.distinct_table(*i)));
-        for t in tables {
-            if !ctx.table_exist(t.as_str())? {
-                continue;
-            }
-            // Only partition conditions: the count comes from file statistics.
-            let sql = format!("SELECT COUNT(*) FROM {} WHERE {conds}", ident(&t));
-            for b in ctx.sql(&sql).await?.collect().await? {
-                let n = b
-                    .column(0)
-                    .as_primitive::<datafusion::arrow::datatypes::Int64Type>();
-                rows += n.iter().flatten().sum::<i64>() as u64;
-            }
+    for (t, conds) in tile_tables_read(ctx, pipeline, layouts, first, last, mode)? {
+        // Only partition conditions: the count comes from file statistics.
+        let sql = format!(
+            "SELECT COUNT(*) FROM {} WHERE {}",
+            ident(&t),
+            conds.join(" AND ")
+        );
+        for b in ctx.sql(&sql).await?.collect().await? {
+            let n = b
+                .column(0)
+                .as_primitive::<datafusion::arrow::datatypes::Int64Type>();
+            rows += n.iter().flatten().sum::<i64>() as u64;
         }
     }
     Ok(rows)
