@@ -24,14 +24,13 @@
 //! `unnest(range(...))` into the spine of (key, day) rows.
 //!
 //! When every aggregate feature is a count, sum, mean, active days or days since the
-//! first/last event ([`direct_features`]), the query skips the +/- rows: the visible tile
-//! rows (at their event day) and the spine (at its snapshot day) go through one sort per
-//! key, and daymark's windowed-total functions (`window_totals.rs`) aggregate, for each
-//! spine row, the rows visible that day.
+//! first/last event ([`direct_features`]), the query skips the +/- rows and the spine: the
+//! visible tile rows and the population's spans of days are grouped by key, and daymark's
+//! windowed-total aggregate (`window_totals.rs`) returns, for each day of the key's spans,
+//! the totals of the rows visible that day; the lists are unnested into snapshot rows.
 //!
-//! Everything is DataFusion SQL of built-in functions and daymark's registered window
-//! functions (`functions.rs`, `window_totals.rs`; a cluster's executors register them
-//! too). The naive per-day query
+//! Everything is DataFusion SQL of built-in functions and daymark's registered functions
+//! (`functions.rs`, `window_totals.rs`; a cluster's executors register them too). The naive per-day query
 //! (`sql.rs`) stays the oracle: `tests/tiled_vs_naive.rs` compares every cell.
 
 use crate::build::{snapshot_path, BuildError, DayReport, DayWriter, StagedCheck};
@@ -143,11 +142,12 @@ const WORK_ROWS_PER_QUERY: u64 = 16_000_000;
 /// aggregation, the window sort and the final sort), measured as peak resident memory
 /// over working-set rows on the benchmark world (docs/benchmarks.md).
 const BYTES_PER_WORK_ROW: u64 = 280;
-/// The same for the windowed-total query ([`direct_features`]): DataFusion's
-/// non-streaming window operator holds its whole input, a copy of it and the results
-/// outside the memory pool (measured: peak 13.4 GB over 16M-row queries on the 100M
-/// world, docs/benchmarks.md seventh measurement). Its queries are cut three times
-/// smaller; they are several times cheaper per row.
+/// The same for the windowed-total query ([`direct_features`]), measured when it ran
+/// DataFusion's non-streaming window operator, which held its whole input, a copy of it
+/// and the results outside the memory pool (peak 13.4 GB over 16M-row queries on the 100M
+/// world, docs/benchmarks.md seventh measurement). The grouping that replaced it peaks
+/// lower (1.1 GB against 1.4 GB on the 10M world, fifteenth measurement); the constant was
+/// not measured again.
 const DIRECT_BYTES_PER_WORK_ROW: u64 = 840;
 
 /// Working-set rows per backfill query: as the session was told, else what its memory
@@ -332,7 +332,7 @@ fn sum_or_mean(agg: Aggregation, i: usize, float: bool) -> String {
     }
 }
 
-/// Whether every aggregate feature of `pipeline` is one that the windowed-total functions
+/// Whether every aggregate feature of `pipeline` is one that the windowed totals
 /// ([`crate::window_totals`]) compute straight from tile rows: counts, sums and means of
 /// integers, decimals or floats, active days, days since the first or last event. Other
 /// aggregations (min, max, first, last, distinct counts) take the general query.
@@ -362,10 +362,12 @@ pub fn direct_features(pipeline: &Pipeline, types: &TileTypes) -> bool {
     })
 }
 
-/// The rest of [`range_query`] after the spine when [`direct_features`] holds: one UNION
-/// of the visible tile rows (at their event day) and the spine (at its snapshot day), and
-/// per feature one windowed-total function over each key's rows in day order; the spine
-/// rows carry the snapshots.
+/// The rest of [`range_query`] after the population's spans when [`direct_features`]
+/// holds: one UNION of the visible tile rows and the spans, grouped by key into one call of
+/// the windowed-total aggregate with an output per feature column, unnested into one row
+/// per (key, snapshot day). The rows must be ordered by day first: DataFusion 55 keeps the
+/// grouping's "the key determines every column" through the unnest and would drop any
+/// sort column after the key.
 fn direct_tail(
     pipeline: &Pipeline,
     layouts: &BTreeMap<String, TileLayout>,
@@ -387,7 +389,8 @@ fn direct_tail(
             }
         }
     }
-    let mut windows: Vec<String> = Vec::new();
+    // Per output: (kind, window, union column) arguments, and the output's name.
+    let mut outputs: Vec<(String, String)> = Vec::new();
     let mut layer0 = vec![
         format!("p.__key AS {}", ident(&pipeline.file.key)),
         "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
@@ -427,10 +430,7 @@ fn direct_tail(
                     col
                 }
             };
-            windows.push(format!(
-                "{}({col}, __p, __tn, __vn, {bound}) OVER (PARTITION BY __key ORDER BY __p) AS {out}",
-                kind.name()
-            ));
+            outputs.push((format!("{}, {bound}, {col}", kind.code()), out));
         };
         let v = match agg {
             Aggregation::Count => {
@@ -501,7 +501,8 @@ fn direct_tail(
         };
         layer0.push(feature_column(f, *agg, &v));
     }
-    // One branch per source with features, then the spine; each names every column.
+    // One branch per source with features, then the population's spans of days; each
+    // names every column.
     let mut sources: Vec<&str> = Vec::new();
     for (_, _, source, _) in &columns {
         if !sources.contains(&source.as_str()) {
@@ -510,18 +511,21 @@ fn direct_tail(
     }
     let mut branches = Vec::new();
     for from in sources.iter().map(Some).chain([None]) {
+        let none = "CAST(NULL AS BIGINT)";
         let mut cols = match from {
             Some(_) => vec![
                 "__key".to_string(),
-                "__tn AS __p".to_string(),
                 "__tn".to_string(),
                 "__vn".to_string(),
+                format!("{none} AS __s"),
+                format!("{none} AS __e"),
             ],
             None => vec![
                 "__key".to_string(),
-                "__dn AS __p".to_string(),
-                "CAST(NULL AS BIGINT) AS __tn".to_string(),
-                "CAST(NULL AS BIGINT) AS __vn".to_string(),
+                format!("{none} AS __tn"),
+                format!("{none} AS __vn"),
+                "__s".to_string(),
+                "__e".to_string(),
             ],
         };
         for (name, ty, source, expr) in &columns {
@@ -534,19 +538,29 @@ fn direct_tail(
         }
         let table = match from {
             Some(s) => ident(&format!("{s}__v")),
-            None => "__spine".to_string(),
+            None => "__pop_spans WHERE __s <= __e".to_string(),
         };
         branches.push(format!("SELECT {} FROM {table}", cols.join(", ")));
     }
     ctes.push(format!("__u AS ({})", branches.join("\nUNION ALL\n")));
-    let mut w_cols = vec![
+    // One list of snapshot days per key (see `window_totals.rs`), then a row per day.
+    let args: Vec<&str> = outputs.iter().map(|o| o.0.as_str()).collect();
+    ctes.push(format!(
+        "__g AS (SELECT __key, {}(__tn, __vn, __s, __e, {}) AS __r FROM __u GROUP BY __key)",
+        crate::window_totals::WINDOW_TOTALS,
+        args.join(", ")
+    ));
+    let mut p_cols = vec![
         "__key".to_string(),
-        "__p AS __dn".to_string(),
-        "__tn".to_string(),
+        "get_field(__o, 'dn') AS __dn".to_string(),
     ];
-    w_cols.extend(windows);
-    ctes.push(format!("__w AS (SELECT {} FROM __u)", w_cols.join(", ")));
-    ctes.push("__population AS (SELECT * FROM __w WHERE __tn IS NULL)".to_string());
+    for (m, (_, out)) in outputs.iter().enumerate() {
+        p_cols.push(format!("get_field(__o, 'o{m}') AS {out}"));
+    }
+    ctes.push(format!(
+        "__population AS (SELECT {} FROM (SELECT __key, unnest(__r) AS __o FROM __g))",
+        p_cols.join(", ")
+    ));
     finish(pipeline, &ctes, &layer0, &[], "snapshot_date, ")
 }
 

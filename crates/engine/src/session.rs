@@ -94,7 +94,13 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
             resident: ResidentCap::new(user_limit),
         }));
     }
-    let ctx = SessionContext::new_with_config_rt(config, Arc::new(runtime.build()?));
+    let state = datafusion::execution::SessionStateBuilder::new()
+        .with_config(config)
+        .with_runtime_env(Arc::new(runtime.build()?))
+        .with_default_features()
+        .with_physical_optimizer_rule(Arc::new(crate::window_totals::OnePhaseTotals))
+        .build();
+    let ctx = SessionContext::new_with_state(state);
     crate::functions::register(&ctx);
     crate::window_totals::register(&ctx);
     Ok(ctx)

@@ -1,152 +1,76 @@
-//! daymark's windowed-total functions: a backfill's additive features straight from tile
-//! rows, one pass per key.
+//! daymark's windowed totals: a backfill's additive features straight from tile rows, one
+//! pass per key.
 //!
-//! A key's rows arrive ordered by position `p`: tile rows (event day `tn`, first visible
-//! day `vn`, a value `x`) at their event day, and snapshot rows (`tn` NULL) at their
-//! snapshot day `d`. For each snapshot row the function aggregates the tile rows visible on
-//! that day, `vn <= d <= tn + w` (the window's half-open day range and, in as-known mode,
-//! arrival before the cutoff), in one pass with two pointers over the event days and a
-//! queue of rows that arrived late. The general backfill query instead unions a plus row
-//! and a minus row per window length and groups them by (key, day) before a running sum:
-//! several times as many rows through a hash aggregation (docs/benchmarks.md, seventh
-//! measurement).
+//! [`WINDOW_TOTALS`] is an aggregate grouped by key. A key's rows are tile rows (event day
+//! `tn`, first visible day `vn`, values `x`) and spans of snapshot days. For each snapshot
+//! day `d` the function aggregates the tile rows visible on that day,
+//! `vn <= d <= tn + w` (the window's half-open day range and, in as-known mode, arrival
+//! before the cutoff), in one pass with two pointers over the event days and a queue of
+//! rows that arrived late, and returns a list of one struct per day. The general backfill
+//! query instead unions a plus row and a minus row per window length and groups them by
+//! (key, day) before a running sum: several times as many rows through a hash aggregation
+//! (docs/benchmarks.md, seventh measurement).
 //!
 //! Sums are exact: integers and decimals are added as `i128` (floats are cast to
 //! DECIMAL(38, 12) by the query first), so the order rows arrive in never changes a bit of
 //! the result.
 //!
-//! The functions need the whole partition (`evaluate_all`), so DataFusion runs them in its
-//! non-streaming window operator, over one key range of a backfill at a time. On a cluster
-//! every executor's session must know them: [`register`] adds them.
+//! The aggregate keeps all rows of a key until the grouping ends, so a backfill runs it
+//! over one key range at a time. On a cluster every executor's session must know it:
+//! [`register`] adds it, and [`OnePhaseTotals`] (a physical rule, optional) runs the
+//! grouping in one phase.
 
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, Decimal128Array, Int64Array, PrimitiveArray, UInt64Array,
+    Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Int64Array, ListArray, PrimitiveArray,
+    StructArray, UInt64Array,
 };
+use datafusion::arrow::buffer::OffsetBuffer;
 use datafusion::arrow::datatypes::{
-    DataType, Decimal128Type, Field, FieldRef, Int64Type, UInt64Type,
+    DataType, Decimal128Type, Field, FieldRef, Fields, Int64Type, UInt64Type,
 };
-use datafusion::common::{exec_err, plan_err, Result};
-use datafusion::logical_expr::function::{PartitionEvaluatorArgs, WindowUDFFieldArgs};
+use datafusion::common::config::ConfigOptions;
+use datafusion::common::tree_node::{Transformed, TransformedResult, TreeNode};
+use datafusion::common::{exec_err, plan_err, Result, ScalarValue};
+use datafusion::logical_expr::function::{AccumulatorArgs, StateFieldsArgs};
 use datafusion::logical_expr::{
-    LimitEffect, PartitionEvaluator, Signature, Volatility, WindowUDF, WindowUDFImpl,
+    Accumulator, AggregateUDF, AggregateUDFImpl, EmitTo, GroupsAccumulator, Signature, Volatility,
 };
+use datafusion::physical_expr::expressions::Literal;
 use datafusion::physical_expr::PhysicalExpr;
+use datafusion::physical_optimizer::PhysicalOptimizerRule;
+use datafusion::physical_plan::aggregates::{AggregateExec, AggregateMode};
+use datafusion::physical_plan::repartition::RepartitionExec;
+use datafusion::physical_plan::{ExecutionPlan, Partitioning};
 use datafusion::prelude::SessionContext;
 use std::cmp::Reverse;
 use std::collections::{BinaryHeap, HashMap};
 use std::sync::Arc;
 
-/// Sum of the visible values (NULL when none is visible).
-pub const WINDOW_SUM: &str = "daymark_window_sum";
-/// Number of distinct event days among the visible rows whose value is above zero.
-pub const WINDOW_DAYS: &str = "daymark_window_days";
-/// Earliest event day of a visible row whose value is above zero (unbounded windows).
-pub const WINDOW_FIRST_DAY: &str = "daymark_window_first_day";
-/// Latest event day of a visible row whose value is above zero (unbounded windows).
-pub const WINDOW_LAST_DAY: &str = "daymark_window_last_day";
-
-/// What a windowed-total function computes for each snapshot row.
+/// What an output of [`WINDOW_TOTALS`] computes for each snapshot day.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum WindowKind {
-    /// [`WINDOW_SUM`].
+    /// Sum of the visible values (NULL when none is visible).
     Sum,
-    /// [`WINDOW_DAYS`].
+    /// Number of distinct event days among the visible rows whose value is above zero.
     Days,
-    /// [`WINDOW_FIRST_DAY`].
+    /// Earliest event day of a visible row whose value is above zero (unbounded windows).
     FirstDay,
-    /// [`WINDOW_LAST_DAY`].
+    /// Latest event day of a visible row whose value is above zero (unbounded windows).
     LastDay,
 }
 
-impl WindowKind {
-    /// The name the function is registered under.
-    pub fn name(self) -> &'static str {
-        match self {
-            WindowKind::Sum => WINDOW_SUM,
-            WindowKind::Days => WINDOW_DAYS,
-            WindowKind::FirstDay => WINDOW_FIRST_DAY,
-            WindowKind::LastDay => WINDOW_LAST_DAY,
+/// The type of a total of values of type `x`.
+fn output_type(x: &DataType) -> Result<DataType> {
+    Ok(match x {
+        DataType::Int64 | DataType::Null => DataType::Int64,
+        DataType::UInt64 => DataType::UInt64,
+        DataType::Decimal128(_, s) => DataType::Decimal128(38, *s),
+        other => {
+            return plan_err!(
+                "{WINDOW_TOTALS} adds BIGINT, unsigned BIGINT or DECIMAL, not {other}"
+            )
         }
-    }
-}
-
-/// `f(x, p, tn, vn, w) OVER (PARTITION BY key ORDER BY p)`: for rows whose `tn` is NULL
-/// (snapshot rows, day `p`), the aggregate of `x` over the rows visible that day; NULL on
-/// the other rows. `w` is a constant window length in days, NULL for no bound.
-#[derive(Debug, PartialEq, Eq, Hash)]
-pub struct WindowTotal {
-    kind: WindowKind,
-    signature: Signature,
-}
-
-impl WindowTotal {
-    /// The function of `kind`.
-    pub fn new(kind: WindowKind) -> Self {
-        WindowTotal {
-            kind,
-            signature: Signature::any(5, Volatility::Immutable),
-        }
-    }
-}
-
-/// The output type for input values of type `x`.
-fn output_type(kind: WindowKind, x: &DataType) -> Result<DataType> {
-    Ok(match (kind, x) {
-        (WindowKind::Sum, DataType::Int64 | DataType::Null) => DataType::Int64,
-        (WindowKind::Sum, DataType::UInt64) => DataType::UInt64,
-        (WindowKind::Sum, DataType::Decimal128(_, s)) => DataType::Decimal128(38, *s),
-        (WindowKind::Sum, other) => {
-            return plan_err!("{WINDOW_SUM} adds BIGINT, unsigned BIGINT or DECIMAL, not {other}")
-        }
-        _ => DataType::Int64,
     })
-}
-
-impl WindowUDFImpl for WindowTotal {
-    fn name(&self) -> &str {
-        self.kind.name()
-    }
-
-    fn signature(&self) -> &Signature {
-        &self.signature
-    }
-
-    fn partition_evaluator(
-        &self,
-        args: PartitionEvaluatorArgs,
-    ) -> Result<Box<dyn PartitionEvaluator>> {
-        let x = args
-            .input_fields()
-            .first()
-            .map(|f| f.data_type().clone())
-            .unwrap_or(DataType::Null);
-        Ok(Box::new(WindowEvaluator {
-            kind: self.kind,
-            out: output_type(self.kind, &x)?,
-        }))
-    }
-
-    fn field(&self, args: WindowUDFFieldArgs) -> Result<FieldRef> {
-        let x = args
-            .get_input_field(0)
-            .map(|f| f.data_type().clone())
-            .unwrap_or(DataType::Null);
-        Ok(Arc::new(Field::new(
-            args.name(),
-            output_type(self.kind, &x)?,
-            true,
-        )))
-    }
-
-    fn limit_effect(&self, _args: &[Arc<dyn PhysicalExpr>]) -> LimitEffect {
-        LimitEffect::None
-    }
-}
-
-#[derive(Debug)]
-struct WindowEvaluator {
-    kind: WindowKind,
-    out: DataType,
 }
 
 /// A BIGINT argument.
@@ -260,7 +184,7 @@ impl Visible {
             WindowKind::Sum => {
                 self.sum = match self.sum.checked_add(r.x) {
                     Some(s) => s,
-                    None => return exec_err!("{WINDOW_SUM}: the total overflows"),
+                    None => return exec_err!("{WINDOW_TOTALS}: the total overflows"),
                 }
             }
             WindowKind::Days => {
@@ -296,103 +220,66 @@ impl Visible {
     }
 }
 
-impl PartitionEvaluator for WindowEvaluator {
-    fn evaluate_all(&mut self, values: &[ArrayRef], num_rows: usize) -> Result<ArrayRef> {
-        let [x, p, tn, vn, w] = values else {
-            return exec_err!("{} takes (x, p, tn, vn, w)", self.kind.name());
-        };
-        let window = if num_rows == 0 {
-            None
-        } else {
-            int_at(ints(w, "w")?, 0)
-        };
-        let (p, tn, vn, x) = (
-            ints(p, "p")?,
-            ints(tn, "tn")?,
-            ints(vn, "vn")?,
-            Values::of(x)?,
-        );
-        if window.is_some() && matches!(self.kind, WindowKind::FirstDay | WindowKind::LastDay) {
-            return exec_err!("{} takes no window bound", self.kind.name());
+/// The aggregate of `kind` over the rows visible on each of `days` (ascending): a row is
+/// visible on day `d` from its first visible day `vn` on, if its event day `tn` is before
+/// `d` and, with a window `w`, not before `d - w`. `rows` are in event-day order and hold
+/// only the rows `kind` counts.
+fn totals(
+    kind: WindowKind,
+    window: Option<i64>,
+    rows: &[TileRow],
+    days: &[i64],
+) -> Result<Vec<Option<i128>>> {
+    let mut out = Vec::with_capacity(days.len());
+    let mut visible = Visible::new(kind, rows);
+    let mut shown = vec![false; rows.len()];
+    // Rows in the window not visible yet, by first visible day.
+    let mut waiting: BinaryHeap<Reverse<(i64, usize)>> = BinaryHeap::new();
+    let (mut entered, mut left) = (0usize, 0usize);
+    for &d in days {
+        // A row can be visible on day d only if its event day is before d.
+        while entered < rows.len() && rows[entered].tn < d {
+            if rows[entered].vn <= d {
+                visible.add(&rows[entered])?;
+                shown[entered] = true;
+            } else {
+                waiting.push(Reverse((rows[entered].vn, entered)));
+            }
+            entered += 1;
         }
-        // Tile rows in event-day order, and the snapshot rows (row, day).
-        let mut rows: Vec<TileRow> = Vec::new();
-        let mut snapshots: Vec<(usize, i64)> = Vec::new();
-        for i in 0..num_rows {
-            match int_at(tn, i) {
-                None => {
-                    if let Some(d) = int_at(p, i) {
-                        snapshots.push((i, d));
-                    }
+        if let Some(w) = window {
+            // Rows whose event day is before d - w have left the window for good.
+            while left < entered && rows[left].tn < d - w {
+                if shown[left] {
+                    visible.remove(&rows[left]);
+                    shown[left] = false;
                 }
-                Some(t) => {
-                    let (Some(v), Some(x)) = (int_at(vn, i), x.at(i)) else {
-                        continue;
-                    };
-                    if self.kind != WindowKind::Sum && x <= 0 {
-                        continue;
-                    }
-                    rows.push(TileRow { tn: t, vn: v, x });
-                }
+                left += 1;
             }
         }
-        if !rows.is_sorted_by_key(|r| r.tn) {
-            rows.sort_by_key(|r| r.tn);
-        }
-        if !snapshots.is_sorted_by_key(|s| s.1) {
-            snapshots.sort_by_key(|s| s.1);
-        }
-        let mut out: Vec<Option<i128>> = vec![None; num_rows];
-        let mut visible = Visible::new(self.kind, &rows);
-        let mut shown = vec![false; rows.len()];
-        // Rows in the window not visible yet, by first visible day.
-        let mut waiting: BinaryHeap<Reverse<(i64, usize)>> = BinaryHeap::new();
-        let (mut entered, mut left) = (0usize, 0usize);
-        for (i, d) in snapshots {
-            // A row can be visible on day d only if its event day is before d.
-            while entered < rows.len() && rows[entered].tn < d {
-                if rows[entered].vn <= d {
-                    visible.add(&rows[entered])?;
-                    shown[entered] = true;
-                } else {
-                    waiting.push(Reverse((rows[entered].vn, entered)));
-                }
-                entered += 1;
+        while let Some(Reverse((v, j))) = waiting.peek().copied() {
+            if v > d {
+                break;
             }
-            if let Some(w) = window {
-                // Rows whose event day is before d - w have left the window for good.
-                while left < entered && rows[left].tn < d - w {
-                    if shown[left] {
-                        visible.remove(&rows[left]);
-                        shown[left] = false;
-                    }
-                    left += 1;
-                }
+            waiting.pop();
+            if j >= left {
+                visible.add(&rows[j])?;
+                shown[j] = true;
             }
-            while let Some(Reverse((v, j))) = waiting.peek().copied() {
-                if v > d {
-                    break;
-                }
-                waiting.pop();
-                if j >= left {
-                    visible.add(&rows[j])?;
-                    shown[j] = true;
-                }
-            }
-            out[i] = match self.kind {
-                WindowKind::Sum => (visible.rows > 0).then_some(visible.sum),
-                WindowKind::Days => Some(visible.days as i128),
-                WindowKind::FirstDay => visible.first.map(i128::from),
-                WindowKind::LastDay => visible.last.map(i128::from),
-            };
         }
-        to_array(&self.out, out)
+        out.push(match kind {
+            WindowKind::Sum => (visible.rows > 0).then_some(visible.sum),
+            WindowKind::Days => Some(visible.days as i128),
+            WindowKind::FirstDay => visible.first.map(i128::from),
+            WindowKind::LastDay => visible.last.map(i128::from),
+        });
     }
+    Ok(out)
 }
 
 /// The results as an array of `out`'s type (an error where a total does not fit).
 fn to_array(out: &DataType, values: Vec<Option<i128>>) -> Result<ArrayRef> {
-    let overflow = || exec_err!("{WINDOW_SUM}: the total does not fit {out}");
+    let overflow = || exec_err!("{WINDOW_TOTALS}: the total does not fit {out}");
     Ok(match out {
         DataType::Int64 => {
             let mut v = Vec::with_capacity(values.len());
@@ -424,192 +311,732 @@ fn to_array(out: &DataType, values: Vec<Option<i128>>) -> Result<ArrayRef> {
     })
 }
 
-/// The windowed-total functions, as registered.
-pub fn window_functions() -> Vec<WindowUDF> {
-    [
-        WindowKind::Sum,
-        WindowKind::Days,
-        WindowKind::FirstDay,
-        WindowKind::LastDay,
-    ]
-    .into_iter()
-    .map(|k| WindowUDF::from(WindowTotal::new(k)))
-    .collect()
+/// `daymark_window_totals(tn, vn, s, e, k0, w0, x0, k1, w1, x1, ...)`, grouped by key:
+/// the same totals as the window functions above, from one hash grouping of a key's rows
+/// instead of a sort of them by (key, day). Tile rows have `tn` (event day), `vn` (first
+/// visible day) and values `x0, x1...`; span rows (`tn` NULL) have the snapshot days
+/// `s..=e`. The result is a list of one struct per snapshot day, day `dn` first, then one
+/// field `o{m}` per output: kind code `km` ([`WindowKind::code`], a constant), window
+/// length `wm` (a constant, NULL for no bound) over values `xm`. The output `o{m}` has
+/// the type of a total of `xm` (BIGINT for BIGINT, DECIMAL(38, s) for DECIMAL(p, s)).
+///
+/// A backfill unnests the lists. It used window functions over each key's rows before:
+/// those needed the rows sorted by (key, day) and cut into keys by comparing key strings
+/// row by row, which was most of a key-range query's time (docs/benchmarks.md, twelfth
+/// and fifteenth measurements).
+pub const WINDOW_TOTALS: &str = "daymark_window_totals";
+
+impl WindowKind {
+    /// The constant that selects `self` in [`WINDOW_TOTALS`]'s arguments.
+    pub fn code(self) -> i64 {
+        match self {
+            WindowKind::Sum => 0,
+            WindowKind::Days => 1,
+            WindowKind::FirstDay => 2,
+            WindowKind::LastDay => 3,
+        }
+    }
+
+    fn of_code(code: i64) -> Option<Self> {
+        [
+            WindowKind::Sum,
+            WindowKind::Days,
+            WindowKind::FirstDay,
+            WindowKind::LastDay,
+        ]
+        .into_iter()
+        .find(|k| k.code() == code)
+    }
 }
 
-/// Registers the windowed-total functions in `ctx`.
-pub fn register(ctx: &SessionContext) {
-    for f in window_functions() {
-        ctx.register_udwf(f);
+/// [`WINDOW_TOTALS`].
+#[derive(Debug, PartialEq, Eq, Hash)]
+pub struct WindowTotalsAggregate {
+    signature: Signature,
+}
+
+impl Default for WindowTotalsAggregate {
+    fn default() -> Self {
+        WindowTotalsAggregate {
+            signature: Signature::variadic_any(Volatility::Immutable),
+        }
     }
+}
+
+/// The fields of one snapshot day's struct for arguments of types `args`.
+fn day_fields(args: &[DataType]) -> Result<Fields> {
+    if args.len() < 4 || !(args.len() - 4).is_multiple_of(3) {
+        return plan_err!(
+            "{WINDOW_TOTALS} takes (tn, vn, s, e, then kind, window, value per output)"
+        );
+    }
+    let mut fields = vec![Field::new("dn", DataType::Int64, false)];
+    for (m, x) in args[4..].chunks(3).map(|c| &c[2]).enumerate() {
+        fields.push(Field::new(format!("o{m}"), output_type(x)?, true));
+    }
+    Ok(fields.into())
+}
+
+fn list_of(t: DataType) -> DataType {
+    DataType::List(Arc::new(Field::new_list_field(t, true)))
+}
+
+impl AggregateUDFImpl for WindowTotalsAggregate {
+    fn name(&self) -> &str {
+        WINDOW_TOTALS
+    }
+
+    fn signature(&self) -> &Signature {
+        &self.signature
+    }
+
+    fn return_type(&self, args: &[DataType]) -> Result<DataType> {
+        Ok(list_of(DataType::Struct(day_fields(args)?)))
+    }
+
+    fn state_fields(&self, args: StateFieldsArgs) -> Result<Vec<FieldRef>> {
+        let name = |part: &str| format!("{}[{part}]", args.name);
+        Ok(vec![
+            Arc::new(Field::new(name("tn"), list_of(DataType::Int64), true)),
+            Arc::new(Field::new(name("vn"), list_of(DataType::Int64), true)),
+            Arc::new(Field::new(name("x"), list_of(RAW), true)),
+            Arc::new(Field::new(name("s"), list_of(DataType::Int64), true)),
+            Arc::new(Field::new(name("e"), list_of(DataType::Int64), true)),
+        ])
+    }
+
+    fn accumulator(&self, args: AccumulatorArgs) -> Result<Box<dyn Accumulator>> {
+        Ok(Box::new(OneKey(KeyTotals::new(&args)?)))
+    }
+
+    fn groups_accumulator_supported(&self, _args: AccumulatorArgs) -> bool {
+        true
+    }
+
+    fn create_groups_accumulator(
+        &self,
+        args: AccumulatorArgs,
+    ) -> Result<Box<dyn GroupsAccumulator>> {
+        Ok(Box::new(KeyTotals::new(&args)?))
+    }
+}
+
+/// Values in the state and in memory: exact integers as `i128` (a DECIMAL(38, 0) in the
+/// state, whatever the value's own scale: the outputs put the scale back).
+const RAW: DataType = DataType::Decimal128(38, 0);
+/// A NULL value in memory (below any DECIMAL(38)'s range, and any 64-bit integer's).
+const NULL_X: i128 = i128::MIN;
+
+/// One output: what it computes, over which stored value column.
+#[derive(Debug)]
+struct TotalOutput {
+    kind: WindowKind,
+    window: Option<i64>,
+    slot: usize,
+    out: DataType,
+}
+
+/// The rows of one key.
+#[derive(Debug, Default)]
+struct KeyRows {
+    tn: Vec<i64>,
+    vn: Vec<i64>,
+    /// `slots` values per tile row, row after row ([`NULL_X`] for NULL).
+    x: Vec<i128>,
+    spans: Vec<(i64, i64)>,
+}
+
+impl KeyRows {
+    fn bytes(&self) -> usize {
+        (self.tn.capacity() + self.vn.capacity()) * 8
+            + self.x.capacity() * 16
+            + self.spans.capacity() * 16
+    }
+}
+
+/// The accumulator of [`WINDOW_TOTALS`] for all keys of a grouping.
+#[derive(Debug)]
+struct KeyTotals {
+    outputs: Vec<TotalOutput>,
+    /// The argument each stored value column is read from (arguments repeated across
+    /// outputs, such as a count in three windows, are stored once).
+    slot_args: Vec<usize>,
+    fields: Fields,
+    keys: Vec<KeyRows>,
+    bytes: usize,
+}
+
+/// A constant BIGINT argument (NULL as `None`).
+fn constant(e: &Arc<dyn PhysicalExpr>, what: &str) -> Result<Option<i64>> {
+    let Some(l) = e.downcast_ref::<Literal>() else {
+        return plan_err!("{WINDOW_TOTALS}: the {what} must be a constant");
+    };
+    match l.value() {
+        ScalarValue::Int64(v) => Ok(*v),
+        ScalarValue::Null => Ok(None),
+        other => plan_err!("{WINDOW_TOTALS}: the {what} must be a BIGINT, not {other}"),
+    }
+}
+
+impl KeyTotals {
+    fn new(args: &AccumulatorArgs) -> Result<Self> {
+        let types: Vec<DataType> = args
+            .expr_fields
+            .iter()
+            .map(|f| f.data_type().clone())
+            .collect();
+        let fields = day_fields(&types)?;
+        let mut outputs = Vec::new();
+        let mut slot_args: Vec<usize> = Vec::new();
+        for (m, chunk) in args.exprs[4..].chunks(3).enumerate() {
+            let Some(kind) = constant(&chunk[0], "kind")?.and_then(WindowKind::of_code) else {
+                return plan_err!("{WINDOW_TOTALS}: output {m} has no known kind");
+            };
+            let window = constant(&chunk[1], "window")?;
+            if window.is_some() && matches!(kind, WindowKind::FirstDay | WindowKind::LastDay) {
+                return plan_err!("{WINDOW_TOTALS}: output {m} ({kind:?}) takes no window bound");
+            }
+            let arg = 4 + 3 * m + 2;
+            let slot = match slot_args
+                .iter()
+                .position(|a| *args.exprs[*a] == *args.exprs[arg])
+            {
+                Some(s) => s,
+                None => {
+                    slot_args.push(arg);
+                    slot_args.len() - 1
+                }
+            };
+            outputs.push(TotalOutput {
+                kind,
+                window,
+                slot,
+                out: fields[m + 1].data_type().clone(),
+            });
+        }
+        Ok(KeyTotals {
+            outputs,
+            slot_args,
+            fields,
+            keys: Vec::new(),
+            bytes: 0,
+        })
+    }
+
+    fn grow(&mut self, total_num_groups: usize) {
+        if self.keys.len() < total_num_groups {
+            let before = self.keys.capacity();
+            self.keys.resize_with(total_num_groups, KeyRows::default);
+            self.bytes += (self.keys.capacity() - before) * std::mem::size_of::<KeyRows>();
+        }
+    }
+
+    /// Counts the bytes held by `keys` anew (after some were emitted).
+    fn recount(&mut self) {
+        self.bytes = self.keys.iter().map(KeyRows::bytes).sum::<usize>()
+            + self.keys.capacity() * std::mem::size_of::<KeyRows>();
+    }
+
+    /// The snapshot days of a key, ascending.
+    fn days(rows: &KeyRows) -> Vec<i64> {
+        let mut days: Vec<i64> = rows.spans.iter().flat_map(|&(s, e)| s..=e).collect();
+        if rows.spans.len() > 1 {
+            days.sort_unstable();
+            days.dedup();
+        }
+        days
+    }
+}
+
+impl GroupsAccumulator for KeyTotals {
+    fn update_batch(
+        &mut self,
+        values: &[ArrayRef],
+        group_indices: &[usize],
+        opt_filter: Option<&BooleanArray>,
+        total_num_groups: usize,
+    ) -> Result<()> {
+        self.grow(total_num_groups);
+        let (tn, vn, s, e) = (
+            ints(&values[0], "tn")?,
+            ints(&values[1], "vn")?,
+            ints(&values[2], "s")?,
+            ints(&values[3], "e")?,
+        );
+        let xs = self
+            .slot_args
+            .iter()
+            .map(|a| Values::of(&values[*a]))
+            .collect::<Result<Vec<_>>>()?;
+        for (i, &g) in group_indices.iter().enumerate() {
+            if opt_filter.is_some_and(|f| !f.is_valid(i) || !f.value(i)) {
+                continue;
+            }
+            let rows = &mut self.keys[g];
+            let before = rows.bytes();
+            match (int_at(tn, i), int_at(vn, i)) {
+                (Some(t), Some(v)) => {
+                    rows.tn.push(t);
+                    rows.vn.push(v);
+                    rows.x.extend(xs.iter().map(|x| x.at(i).unwrap_or(NULL_X)));
+                }
+                (Some(_), None) => {}
+                (None, _) => {
+                    if let (Some(s), Some(e)) = (int_at(s, i), int_at(e, i)) {
+                        rows.spans.push((s, e));
+                    }
+                }
+            }
+            self.bytes += rows.bytes() - before;
+        }
+        Ok(())
+    }
+
+    fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
+        let keys = emit_to.take_needed(&mut self.keys);
+        self.recount();
+        let slots = self.slot_args.len();
+        let mut offsets: Vec<i32> = Vec::with_capacity(keys.len() + 1);
+        offsets.push(0);
+        let mut dn: Vec<i64> = Vec::new();
+        let mut outs: Vec<Vec<Option<i128>>> = vec![Vec::new(); self.outputs.len()];
+        let mut rows: Vec<TileRow> = Vec::new();
+        for k in &keys {
+            let days = Self::days(k);
+            // Tile rows in event-day order, shared by all outputs.
+            let mut order: Vec<usize> = (0..k.tn.len()).collect();
+            if !k.tn.is_sorted() {
+                order.sort_by_key(|&r| k.tn[r]);
+            }
+            for (o, values) in self.outputs.iter().zip(outs.iter_mut()) {
+                rows.clear();
+                rows.extend(order.iter().filter_map(|&r| {
+                    let x = k.x[r * slots + o.slot];
+                    (x != NULL_X && (o.kind == WindowKind::Sum || x > 0)).then_some(TileRow {
+                        tn: k.tn[r],
+                        vn: k.vn[r],
+                        x,
+                    })
+                }));
+                values.extend(totals(o.kind, o.window, &rows, &days)?);
+            }
+            let Ok(end) = i32::try_from(dn.len() + days.len()) else {
+                return exec_err!("{WINDOW_TOTALS}: too many snapshot rows in one batch");
+            };
+            dn.extend(days);
+            offsets.push(end);
+        }
+        let mut columns: Vec<ArrayRef> = vec![Arc::new(Int64Array::from(dn))];
+        for (o, values) in self.outputs.iter().zip(outs) {
+            columns.push(to_array(&o.out, values)?);
+        }
+        let days = StructArray::try_new(self.fields.clone(), columns, None)?;
+        Ok(Arc::new(ListArray::try_new(
+            Arc::new(Field::new_list_field(
+                DataType::Struct(self.fields.clone()),
+                true,
+            )),
+            OffsetBuffer::new(offsets.into()),
+            Arc::new(days),
+            None,
+        )?))
+    }
+
+    fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
+        let keys = emit_to.take_needed(&mut self.keys);
+        self.recount();
+        let list = |t: DataType, lens: Vec<usize>, values: ArrayRef| -> Result<ArrayRef> {
+            Ok(Arc::new(ListArray::try_new(
+                Arc::new(Field::new_list_field(t, true)),
+                OffsetBuffer::from_lengths(lens),
+                values,
+                None,
+            )?))
+        };
+        let ints_of = |f: &dyn Fn(&KeyRows) -> Vec<i64>| -> (Vec<usize>, ArrayRef) {
+            let parts: Vec<Vec<i64>> = keys.iter().map(f).collect();
+            (
+                parts.iter().map(Vec::len).collect(),
+                Arc::new(Int64Array::from(parts.concat())),
+            )
+        };
+        let (n_tiles, tn) = ints_of(&|k| k.tn.clone());
+        let (_, vn) = ints_of(&|k| k.vn.clone());
+        let (n_spans, s) = ints_of(&|k| k.spans.iter().map(|p| p.0).collect());
+        let (_, e) = ints_of(&|k| k.spans.iter().map(|p| p.1).collect());
+        let x: Decimal128Array = keys
+            .iter()
+            .flat_map(|k| k.x.iter().map(|v| (*v != NULL_X).then_some(*v)))
+            .collect();
+        let x = Arc::new(x.with_precision_and_scale(38, 0)?);
+        Ok(vec![
+            list(DataType::Int64, n_tiles.clone(), tn)?,
+            list(DataType::Int64, n_tiles.clone(), vn)?,
+            list(RAW, keys.iter().map(|k| k.x.len()).collect(), x as ArrayRef)?,
+            list(DataType::Int64, n_spans.clone(), s)?,
+            list(DataType::Int64, n_spans, e)?,
+        ])
+    }
+
+    fn merge_batch(
+        &mut self,
+        values: &[ArrayRef],
+        group_indices: &[usize],
+        total_num_groups: usize,
+    ) -> Result<()> {
+        self.grow(total_num_groups);
+        let lists = values
+            .iter()
+            .map(|v| match v.as_list_opt::<i32>() {
+                Some(l) => Ok(l),
+                None => exec_err!("{WINDOW_TOTALS}: a state column is not a list"),
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let [tn, vn, x, s, e] = lists.as_slice() else {
+            return exec_err!("{WINDOW_TOTALS}: the state has five columns");
+        };
+        let int_values = |l: &ListArray, what| -> Result<PrimitiveArray<Int64Type>> {
+            Ok(ints(l.values(), what)?.clone())
+        };
+        let (tnv, vnv, sv, ev) = (
+            int_values(tn, "tn")?,
+            int_values(vn, "vn")?,
+            int_values(s, "s")?,
+            int_values(e, "e")?,
+        );
+        let Some(xv) = x.values().as_primitive_opt::<Decimal128Type>() else {
+            return exec_err!("{WINDOW_TOTALS}: the state's values are not DECIMAL");
+        };
+        for (i, &g) in group_indices.iter().enumerate() {
+            let rows = &mut self.keys[g];
+            let before = rows.bytes();
+            let r = tn.value_offsets()[i] as usize..tn.value_offsets()[i + 1] as usize;
+            rows.tn.extend_from_slice(&tnv.values()[r.clone()]);
+            rows.vn.extend_from_slice(&vnv.values()[r]);
+            let r = x.value_offsets()[i] as usize..x.value_offsets()[i + 1] as usize;
+            rows.x
+                .extend(r.map(|j| if xv.is_valid(j) { xv.value(j) } else { NULL_X }));
+            let r = s.value_offsets()[i] as usize..s.value_offsets()[i + 1] as usize;
+            rows.spans.extend(r.map(|j| (sv.value(j), ev.value(j))));
+            self.bytes += rows.bytes() - before;
+        }
+        Ok(())
+    }
+
+    /// Each input row as the state of a key of its own.
+    fn convert_to_state(
+        &self,
+        values: &[ArrayRef],
+        opt_filter: Option<&BooleanArray>,
+    ) -> Result<Vec<ArrayRef>> {
+        let n = values.first().map_or(0, |v| v.len());
+        let mut each = KeyTotals {
+            outputs: Vec::new(),
+            slot_args: self.slot_args.clone(),
+            fields: self.fields.clone(),
+            keys: Vec::new(),
+            bytes: 0,
+        };
+        let rows: Vec<usize> = (0..n).collect();
+        each.update_batch(values, &rows, opt_filter, n)?;
+        each.state(EmitTo::All)
+    }
+
+    fn size(&self) -> usize {
+        self.bytes
+    }
+}
+
+/// [`KeyTotals`] for one key, where DataFusion asks for a plain accumulator.
+#[derive(Debug)]
+struct OneKey(KeyTotals);
+
+impl Accumulator for OneKey {
+    fn update_batch(&mut self, values: &[ArrayRef]) -> Result<()> {
+        let n = values.first().map_or(0, |v| v.len());
+        self.0.update_batch(values, &vec![0; n], None, 1)
+    }
+
+    fn evaluate(&mut self) -> Result<ScalarValue> {
+        self.0.grow(1);
+        ScalarValue::try_from_array(&self.0.evaluate(EmitTo::All)?, 0)
+    }
+
+    fn size(&self) -> usize {
+        std::mem::size_of_val(self) + self.0.size()
+    }
+
+    fn state(&mut self) -> Result<Vec<ScalarValue>> {
+        self.0.grow(1);
+        self.0
+            .state(EmitTo::All)?
+            .iter()
+            .map(|a| ScalarValue::try_from_array(a, 0))
+            .collect()
+    }
+
+    fn merge_batch(&mut self, states: &[ArrayRef]) -> Result<()> {
+        let n = states.first().map_or(0, |v| v.len());
+        self.0.merge_batch(states, &vec![0; n], 1)
+    }
+}
+
+/// A physical rule: a grouping whose only aggregates are [`WINDOW_TOTALS`] runs in one
+/// phase over rows hash-partitioned by key, instead of DataFusion's partial grouping then
+/// final grouping. The function reduces nothing (it keeps every row of a key), so the
+/// partial phase only copied each key's rows into lists for the final phase to copy back
+/// (measured: 1.1 s partial and 1.5 s final of compute in one key range of the benchmark,
+/// docs/benchmarks.md fifteenth measurement). Plans are the same without the rule, only
+/// slower: a cluster whose scheduler lacks it still gets the right rows.
+#[derive(Debug, Default)]
+pub struct OnePhaseTotals;
+
+impl OnePhaseTotals {
+    /// `plan` in one phase, when it is a final grouping of [`WINDOW_TOTALS`] over a hash
+    /// re-partition of its partial grouping.
+    fn rewrite(plan: &Arc<dyn ExecutionPlan>) -> Result<Option<Arc<dyn ExecutionPlan>>> {
+        let Some(last) = plan.downcast_ref::<AggregateExec>() else {
+            return Ok(None);
+        };
+        if *last.mode() != AggregateMode::FinalPartitioned
+            || last.aggr_expr().is_empty()
+            || last
+                .aggr_expr()
+                .iter()
+                .any(|a| a.fun().name() != WINDOW_TOTALS)
+        {
+            return Ok(None);
+        }
+        let Some(shuffle) = last.input().downcast_ref::<RepartitionExec>() else {
+            return Ok(None);
+        };
+        let Partitioning::Hash(_, n) = shuffle.partitioning() else {
+            return Ok(None);
+        };
+        let Some(first) = shuffle.input().downcast_ref::<AggregateExec>() else {
+            return Ok(None);
+        };
+        if *first.mode() != AggregateMode::Partial {
+            return Ok(None);
+        }
+        let rows = Arc::new(RepartitionExec::try_new(
+            Arc::clone(first.input()),
+            Partitioning::Hash(first.group_expr().input_exprs(), *n),
+        )?);
+        let one = AggregateExec::try_new(
+            AggregateMode::SinglePartitioned,
+            first.group_expr().clone(),
+            first.aggr_expr().to_vec(),
+            first.filter_expr().to_vec(),
+            rows,
+            first.input_schema(),
+        )?;
+        if one.schema() != last.schema() {
+            return Ok(None);
+        }
+        Ok(Some(Arc::new(one)))
+    }
+}
+
+impl PhysicalOptimizerRule for OnePhaseTotals {
+    fn optimize(
+        &self,
+        plan: Arc<dyn ExecutionPlan>,
+        _config: &ConfigOptions,
+    ) -> Result<Arc<dyn ExecutionPlan>> {
+        plan.transform_up(|p| {
+            Ok(match Self::rewrite(&p)? {
+                Some(one) => Transformed::yes(one),
+                None => Transformed::no(p),
+            })
+        })
+        .data()
+    }
+
+    fn name(&self) -> &str {
+        "daymark_one_phase_totals"
+    }
+
+    fn schema_check(&self) -> bool {
+        true
+    }
+}
+
+/// Registers [`WINDOW_TOTALS`] in `ctx`.
+pub fn register(ctx: &SessionContext) {
+    ctx.register_udaf(AggregateUDF::from(WindowTotalsAggregate::default()));
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
     use datafusion::arrow::util::pretty::pretty_format_batches;
+    use datafusion::execution::SessionStateBuilder;
     use datafusion::prelude::SessionConfig;
 
-    async fn context(batch_size: usize) -> SessionContext {
-        let ctx = SessionContext::new_with_config(
-            SessionConfig::new()
-                .with_batch_size(batch_size)
-                .with_target_partitions(2),
-        );
+    /// A session of two partitions, with or without [`OnePhaseTotals`] (without it the
+    /// grouping runs in two phases, through the state and `merge_batch`).
+    fn context(batch_size: usize, one_phase: bool) -> SessionContext {
+        let config = SessionConfig::new()
+            .with_batch_size(batch_size)
+            .with_target_partitions(2);
+        let mut state = SessionStateBuilder::new()
+            .with_config(config)
+            .with_default_features();
+        if one_phase {
+            state = state.with_physical_optimizer_rule(Arc::new(OnePhaseTotals));
+        }
+        let ctx = SessionContext::new_with_state(state.build());
         register(&ctx);
         ctx
     }
 
-    async fn column(ctx: &SessionContext, sql: &str) -> Vec<Option<i64>> {
-        let batches = ctx.sql(sql).await.unwrap().collect().await.unwrap();
-        batches
-            .iter()
-            .flat_map(|b| {
-                b.column(0)
-                    .as_primitive::<Int64Type>()
-                    .iter()
-                    .collect::<Vec<_>>()
-            })
-            .collect()
+    async fn text(ctx: &SessionContext, sql: &str) -> String {
+        let b = ctx.sql(sql).await.unwrap().collect().await.unwrap();
+        pretty_format_batches(&b).unwrap().to_string()
+    }
+
+    /// Columns `k, d, o0, o1...` of `WINDOW_TOTALS(tn, vn, s, e, outputs)` over `from`,
+    /// one row per (key, snapshot day), ordered by day then key. (Not by key then day:
+    /// DataFusion 55 keeps the grouping's "key determines every column" through the
+    /// unnest and drops `d` from `ORDER BY k, d`. A backfill orders by day then key.)
+    fn per_day(from: &str, outputs: &[&str]) -> String {
+        let fields: Vec<String> = (0..outputs.len())
+            .map(|m| format!("get_field(o, 'o{m}') AS o{m}"))
+            .collect();
+        format!(
+            "SELECT k, get_field(o, 'dn') AS d, {} FROM (SELECT k, unnest({WINDOW_TOTALS}(tn, vn, s, e, {})) AS o FROM ({from}) GROUP BY k) ORDER BY d, k",
+            fields.join(", "),
+            outputs.join(", ")
+        )
     }
 
     /// Worked by hand. Key `a` has three tile rows (event day, first visible day, value):
-    /// (1, 2, 5), (2, 5, 3) which arrived late, and (3, 4, -1); snapshot rows on days 2, 3,
-    /// 4, 5, 6 and 9. With a 3-day window a row is visible from its first visible day to
-    /// its event day + 3: the first on days 2-4, the second on day 5 only, the third on
-    /// days 4-6. Key `b` has only snapshot rows.
+    /// (1, 2, 5), (2, 5, 3) which arrived late, and (3, 4, -1); snapshot days 2-6 and 9.
+    /// With a 3-day window a row is visible from its first visible day to its event day +
+    /// 3: the first on days 2-4, the second on day 5 only, the third on days 4-6. Key `b`
+    /// has only the snapshot day 4.
     #[tokio::test]
     async fn visible_rows_by_hand() {
-        let ctx = context(2).await;
-        ctx.sql(
-            "CREATE TABLE t (k VARCHAR, p BIGINT, tn BIGINT, vn BIGINT, x BIGINT) AS VALUES
-             ('a', 1, 1, 2, 5), ('a', 2, 2, 5, 3), ('a', 3, 3, 4, -1),
-             ('a', 2, NULL, NULL, NULL), ('a', 3, NULL, NULL, NULL), ('a', 4, NULL, NULL, NULL),
-             ('a', 5, NULL, NULL, NULL), ('a', 6, NULL, NULL, NULL), ('a', 9, NULL, NULL, NULL),
-             ('b', 4, NULL, NULL, NULL)",
-        )
-        .await
-        .unwrap();
-        let of = |f: &str, w: &str| {
-            format!("SELECT v FROM (SELECT k, p, tn, {f}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS v FROM t) WHERE tn IS NULL ORDER BY k, p")
-        };
-        let n = None;
-        assert_eq!(
-            column(&ctx, &of(WINDOW_SUM, "3")).await,
-            vec![Some(5), Some(5), Some(4), Some(2), Some(-1), n, n]
-        );
-        // Days with a value above zero: the third row's -1 does not make its day active.
-        assert_eq!(
-            column(&ctx, &of(WINDOW_DAYS, "3")).await,
-            vec![
-                Some(1),
-                Some(1),
-                Some(1),
-                Some(1),
-                Some(0),
-                Some(0),
-                Some(0)
-            ]
-        );
-        // No bound: rows stay once visible.
-        let all = "CAST(NULL AS BIGINT)";
-        assert_eq!(
-            column(&ctx, &of(WINDOW_SUM, all)).await,
-            vec![Some(5), Some(5), Some(4), Some(7), Some(7), Some(7), n]
-        );
-        assert_eq!(
-            column(&ctx, &of(WINDOW_FIRST_DAY, all)).await,
-            vec![Some(1), Some(1), Some(1), Some(1), Some(1), Some(1), n]
-        );
-        assert_eq!(
-            column(&ctx, &of(WINDOW_LAST_DAY, all)).await,
-            vec![Some(1), Some(1), Some(1), Some(2), Some(2), Some(2), n]
-        );
-        // Tile rows get NULL.
-        let tiles = column(
-            &ctx,
-            &format!("SELECT v FROM (SELECT tn, {WINDOW_SUM}(x, p, tn, vn, 3) OVER (PARTITION BY k ORDER BY p) AS v FROM t) WHERE tn IS NOT NULL"),
-        )
-        .await;
-        assert_eq!(tiles, vec![None, None, None]);
+        for one_phase in [true, false] {
+            let ctx = context(2, one_phase);
+            let rows = "SELECT * FROM (VALUES
+                 ('a', 1, 2, NULL, NULL, 5), ('a', 2, 5, NULL, NULL, 3), ('a', 3, 4, NULL, NULL, -1),
+                 ('a', NULL, NULL, 2, 6, NULL), ('a', NULL, NULL, 9, 9, NULL),
+                 ('b', NULL, NULL, 4, 4, NULL)) AS t(k, tn, vn, s, e, x)";
+            // Sum and active days in 3 days; with no bound: sum, first and last day.
+            let outputs = [
+                "0, 3, x",
+                "1, 3, x",
+                "0, CAST(NULL AS BIGINT), x",
+                "2, CAST(NULL AS BIGINT), x",
+                "3, CAST(NULL AS BIGINT), x",
+            ];
+            let got = text(&ctx, &per_day(rows, &outputs)).await;
+            // The third row's -1 does not make its day active; unbounded, rows stay once
+            // visible.
+            let expected = "\
++---+---+----+----+----+----+----+
+| k | d | o0 | o1 | o2 | o3 | o4 |
++---+---+----+----+----+----+----+
+| a | 2 | 5  | 1  | 5  | 1  | 1  |
+| a | 3 | 5  | 1  | 5  | 1  | 1  |
+| a | 4 | 4  | 1  | 4  | 1  | 1  |
+| b | 4 |    | 0  |    |    |    |
+| a | 5 | 2  | 1  | 7  | 1  | 2  |
+| a | 6 | -1 | 0  | 7  | 1  | 2  |
+| a | 9 |    | 0  | 7  | 1  | 2  |
++---+---+----+----+----+----+----+";
+            assert_eq!(got, expected, "one phase: {one_phase}");
+            // Without GROUP BY (one key): the same list as key `a`'s.
+            let one = text(
+                &ctx,
+                &format!(
+                    "SELECT get_field(o, 'dn') AS d, get_field(o, 'o0') AS o0 FROM (SELECT unnest({WINDOW_TOTALS}(tn, vn, s, e, 0, 3, x)) AS o FROM ({rows}) WHERE k = 'a') ORDER BY d"
+                ),
+            )
+            .await;
+            let sums: Vec<&str> = one
+                .lines()
+                .skip(3)
+                .filter_map(|l| l.split('|').nth(2))
+                .map(str::trim)
+                .collect();
+            assert_eq!(sums, vec!["5", "5", "4", "2", "-1", ""], "{one}");
+        }
     }
 
-    /// On generated rows (many keys, late rows, repeated event days, several batches) each
-    /// function equals the same aggregate written with DataFusion's built-in functions as
-    /// a join of every snapshot row to the tile rows visible on its day.
+    /// On generated rows (many keys, late rows, repeated event days, several batches, one
+    /// span per snapshot day) each output equals the same aggregate written with
+    /// DataFusion's built-in functions as a join of every snapshot row to the tile rows
+    /// visible on its day; in one phase and in two.
     #[tokio::test]
     async fn equal_to_a_join_with_builtin_aggregates() {
-        let ctx = context(7).await;
-        // 40 keys, 30 tile rows each: event day 0-59, late by 0 to 9 days on one row in
-        // four; snapshot rows on days 1..80 of each key, some skipped.
-        ctx.sql(
-            "CREATE TABLE tiles AS SELECT 'k' || CAST(i % 40 AS VARCHAR) AS k,
-                CAST((i * 7919) % 60 AS BIGINT) AS tn,
-                CAST((i * 7919) % 60 + 1 + CASE WHEN i % 4 = 0 THEN (i * 31) % 10 ELSE 0 END AS BIGINT) AS vn,
-                CAST((i * 104729) % 21 - 6 AS BIGINT) AS x,
-                CAST((i * 104729) % 21 - 6 AS DECIMAL(38, 12)) / 7 AS y
-             FROM unnest(range(0, 1200)) AS r(i)",
-        )
-        .await
-        .unwrap();
-        ctx.sql(
-            "CREATE TABLE spine AS SELECT 'k' || CAST(i % 40 AS VARCHAR) AS k, CAST(i / 40 AS BIGINT) AS d
-             FROM unnest(range(40, 3240)) AS r(i) WHERE (i * 13) % 17 <> 0",
-        )
-        .await
-        .unwrap();
-        let union = "SELECT k, tn AS p, tn, vn, x, y FROM tiles UNION ALL SELECT k, d, NULL, NULL, NULL, NULL FROM spine";
-        let text = |sql: String| {
-            let ctx = &ctx;
-            async move {
-                let b = ctx.sql(&sql).await.unwrap().collect().await.unwrap();
-                pretty_format_batches(&b).unwrap().to_string()
-            }
-        };
-        for w in ["1", "7", "28", "CAST(NULL AS BIGINT)"] {
-            let bounded = !w.starts_with("CAST");
-            let inside = if bounded {
-                format!("t.vn <= s.d AND s.d <= t.tn + {w}")
+        for one_phase in [true, false] {
+            let ctx = context(7, one_phase);
+            // 40 keys, 30 tile rows each: event day 0-59, late by 0 to 9 days on one row in
+            // four; snapshot days 1..80 of each key, some skipped.
+            ctx.sql(
+                "CREATE TABLE tiles AS SELECT 'k' || CAST(i % 40 AS VARCHAR) AS k,
+                    CAST((i * 7919) % 60 AS BIGINT) AS tn,
+                    CAST((i * 7919) % 60 + 1 + CASE WHEN i % 4 = 0 THEN (i * 31) % 10 ELSE 0 END AS BIGINT) AS vn,
+                    CAST((i * 104729) % 21 - 6 AS BIGINT) AS x,
+                    CAST((i * 104729) % 21 - 6 AS DECIMAL(38, 12)) / 7 AS y
+                 FROM unnest(range(0, 1200)) AS r(i)",
+            )
+            .await
+            .unwrap();
+            ctx.sql(
+                "CREATE TABLE spine AS SELECT 'k' || CAST(i % 40 AS VARCHAR) AS k, CAST(i / 40 AS BIGINT) AS d
+                 FROM unnest(range(40, 3240)) AS r(i) WHERE (i * 13) % 17 <> 0",
+            )
+            .await
+            .unwrap();
+            let union = "SELECT k, tn, vn, CAST(NULL AS BIGINT) AS s, CAST(NULL AS BIGINT) AS e, x, y FROM tiles
+                UNION ALL SELECT k, NULL, NULL, d AS s, d AS e, NULL, NULL FROM spine";
+            let plan = text(&ctx, &format!("EXPLAIN {}", per_day(union, &["0, 7, x"]))).await;
+            let mode = if one_phase {
+                "mode=SinglePartitioned"
             } else {
-                "t.vn <= s.d".to_string()
+                "mode=Partial"
             };
-            let mut ours = vec![
-                format!("{WINDOW_SUM}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS sx"),
-                format!("{WINDOW_SUM}(y, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS sy"),
-                format!(
-                    "{WINDOW_DAYS}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS days"
-                ),
-            ];
-            let mut theirs = vec![
-                "SUM(t.x) AS sx".to_string(),
-                "SUM(t.y) AS sy".to_string(),
-                "COUNT(DISTINCT CASE WHEN t.x > 0 THEN t.tn END) AS days".to_string(),
-            ];
-            if !bounded {
-                ours.push(format!("{WINDOW_FIRST_DAY}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS first"));
-                ours.push(format!(
-                    "{WINDOW_LAST_DAY}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS last"
-                ));
-                theirs.push("MIN(CASE WHEN t.x > 0 THEN t.tn END) AS first".to_string());
-                theirs.push("MAX(CASE WHEN t.x > 0 THEN t.tn END) AS last".to_string());
+            assert!(plan.contains(mode), "{plan}");
+            for w in ["1", "7", "28", "CAST(NULL AS BIGINT)"] {
+                let bounded = !w.starts_with("CAST");
+                let inside = if bounded {
+                    format!("t.vn <= s.d AND s.d <= t.tn + {w}")
+                } else {
+                    "t.vn <= s.d".to_string()
+                };
+                let mut ours = vec![
+                    format!("0, {w}, x"),
+                    format!("0, {w}, y"),
+                    format!("1, {w}, x"),
+                ];
+                let mut theirs = vec![
+                    "SUM(t.x) AS o0".to_string(),
+                    "SUM(t.y) AS o1".to_string(),
+                    "COUNT(DISTINCT CASE WHEN t.x > 0 THEN t.tn END) AS o2".to_string(),
+                ];
+                if !bounded {
+                    ours.push(format!("2, {w}, x"));
+                    ours.push(format!("3, {w}, x"));
+                    theirs.push("MIN(CASE WHEN t.x > 0 THEN t.tn END) AS o3".to_string());
+                    theirs.push("MAX(CASE WHEN t.x > 0 THEN t.tn END) AS o4".to_string());
+                }
+                let outputs: Vec<&str> = ours.iter().map(String::as_str).collect();
+                let mine = text(&ctx, &per_day(union, &outputs)).await;
+                let reference = text(
+                    &ctx,
+                    &format!(
+                        "SELECT s.k, s.d, {} FROM spine s LEFT JOIN tiles t ON t.k = s.k AND {inside} GROUP BY s.k, s.d ORDER BY s.d, s.k",
+                        theirs.join(", ")
+                    ),
+                )
+                .await;
+                assert!(reference.lines().count() > 2_500, "{reference}");
+                assert_eq!(mine, reference, "window {w}, one phase: {one_phase}");
             }
-            let names: Vec<&str> = ours
-                .iter()
-                .map(|c| c.rsplit(" AS ").next().unwrap())
-                .collect();
-            let mine = text(format!(
-                "SELECT k, d, {} FROM (SELECT k, p AS d, tn, {} FROM ({union})) WHERE tn IS NULL ORDER BY k, d",
-                names.join(", "),
-                ours.join(", ")
-            ))
-            .await;
-            let reference = text(format!(
-                "SELECT s.k, s.d, {} FROM spine s LEFT JOIN tiles t ON t.k = s.k AND {inside} GROUP BY s.k, s.d ORDER BY s.k, s.d",
-                theirs.join(", ")
-            ))
-            .await;
-            assert!(reference.lines().count() > 2_500, "{reference}");
-            assert_eq!(mine, reference, "window {w}");
         }
     }
 
@@ -619,35 +1046,47 @@ mod tests {
     /// day 70,001 only day 70,000; with no bound, day 70,001 sees all three days.
     #[tokio::test]
     async fn active_days_over_a_wide_span_of_event_days() {
-        let ctx = context(3).await;
-        let of = |w: &str| {
-            format!(
-                "SELECT v FROM (SELECT p, tn, {WINDOW_DAYS}(x, p, tn, vn, {w}) OVER (PARTITION BY k ORDER BY p) AS v FROM (VALUES
-                 ('a', 0, 0, 1, 2), ('a', 1, 1, 2, 1), ('a', 70000, 70000, 70001, 1),
-                 ('a', 2, NULL, NULL, NULL), ('a', 70001, NULL, NULL, NULL)) AS t(k, p, tn, vn, x)) WHERE tn IS NULL ORDER BY p"
-            )
-        };
-        assert_eq!(column(&ctx, &of("3")).await, vec![Some(2), Some(1)]);
-        assert_eq!(
-            column(&ctx, &of("CAST(NULL AS BIGINT)")).await,
-            vec![Some(2), Some(3)]
-        );
+        let ctx = context(3, true);
+        let rows = "SELECT * FROM (VALUES
+             ('a', 0, 1, NULL, NULL, 2), ('a', 1, 2, NULL, NULL, 1), ('a', 70000, 70001, NULL, NULL, 1),
+             ('a', NULL, NULL, 2, 2, NULL), ('a', NULL, NULL, 70001, 70001, NULL)) AS t(k, tn, vn, s, e, x)";
+        let got = text(
+            &ctx,
+            &per_day(rows, &["1, 3, x", "1, CAST(NULL AS BIGINT), x"]),
+        )
+        .await;
+        let expected = "\
++---+-------+----+----+
+| k | d     | o0 | o1 |
++---+-------+----+----+
+| a | 2     | 2  | 2  |
+| a | 70001 | 1  | 3  |
++---+-------+----+----+";
+        assert_eq!(got, expected);
     }
 
-    /// A total that does not fit its type is an error, not a wrapped number.
+    /// A total that does not fit its type is an error, not a wrapped number; kinds and
+    /// windows must be constants.
     #[tokio::test]
-    async fn an_overflowing_total_is_an_error() {
-        let ctx = context(8).await;
-        let err = ctx
-            .sql(&format!(
-                "SELECT {WINDOW_SUM}(x, p, tn, vn, 5) OVER (PARTITION BY k ORDER BY p) FROM (VALUES
-                 ('a', 1, 1, 2, 9223372036854775807), ('a', 1, 1, 2, 1), ('a', 3, NULL, NULL, NULL)) AS t(k, p, tn, vn, x)"
-            ))
-            .await
-            .unwrap()
-            .collect()
-            .await
-            .unwrap_err();
-        assert!(err.to_string().contains("does not fit"), "{err}");
+    async fn bad_totals_and_arguments_are_errors() {
+        let ctx = context(8, true);
+        let rows = "SELECT * FROM (VALUES
+             ('a', 1, 2, NULL, NULL, 9223372036854775807), ('a', 1, 2, NULL, NULL, 1),
+             ('a', NULL, NULL, 3, 3, NULL)) AS t(k, tn, vn, s, e, x)";
+        let err = |sql: String| {
+            let ctx = &ctx;
+            async move {
+                match ctx.sql(&sql).await {
+                    Err(e) => e.to_string(),
+                    Ok(df) => df.collect().await.unwrap_err().to_string(),
+                }
+            }
+        };
+        let e = err(per_day(rows, &["0, 5, x"])).await;
+        assert!(e.contains("does not fit"), "{e}");
+        let e = err(per_day(rows, &["tn, 5, x"])).await;
+        assert!(e.contains("must be a constant"), "{e}");
+        let e = err(per_day(rows, &["2, 5, x"])).await;
+        assert!(e.contains("takes no window bound"), "{e}");
     }
 }
