@@ -119,9 +119,9 @@ pub async fn provenance(
     tiles: Option<Tiled<'_>>,
 ) -> Result<Provenance> {
     let q = snapshot_query(pipeline, day, mode);
-    let mut sources = BTreeMap::new();
     let no_pieces = crate::rollups::Pieces::default();
-    for (name, read) in &q.reads {
+    // One small query per source, run side by side: a daily build waits for them.
+    let reads = q.reads.iter().filter_map(|(name, read)| {
         let sql = match tiles.map(|(l, plan)| (l.get(name), plan)) {
             Some((Some(layout), plan)) => tiles_sql(
                 pipeline,
@@ -131,30 +131,33 @@ pub async fn provenance(
                 day,
             ),
             _ => source_sql(pipeline, name, read),
-        };
-        let Some(sql) = sql else {
-            continue;
-        };
-        let batches = ctx.sql(&sql).await?.collect().await?;
-        let mut p = SourceProvenance {
-            max_event_time: None,
-            max_arrival_time: None,
-            rows: 0,
-            knowledge: read.knowledge,
-        };
-        for b in batches.iter().filter(|b| b.num_rows() > 0) {
-            let time = |i: usize| {
-                let a = b.column(i).as_primitive::<TimestampMicrosecondType>();
-                (!a.is_null(0))
-                    .then(|| DateTime::from_timestamp_micros(a.value(0)))?
-                    .map(rfc3339)
+        }?;
+        Some(async move {
+            let batches = ctx.sql(&sql).await?.collect().await?;
+            let mut p = SourceProvenance {
+                max_event_time: None,
+                max_arrival_time: None,
+                rows: 0,
+                knowledge: read.knowledge,
             };
-            p.max_event_time = time(0);
-            p.max_arrival_time = time(1);
-            p.rows = b.column(2).as_primitive::<Int64Type>().value(0);
-        }
-        sources.insert(name.clone(), p);
-    }
+            for b in batches.iter().filter(|b| b.num_rows() > 0) {
+                let time = |i: usize| {
+                    let a = b.column(i).as_primitive::<TimestampMicrosecondType>();
+                    (!a.is_null(0))
+                        .then(|| DateTime::from_timestamp_micros(a.value(0)))?
+                        .map(rfc3339)
+                };
+                p.max_event_time = time(0);
+                p.max_arrival_time = time(1);
+                p.rows = b.column(2).as_primitive::<Int64Type>().value(0);
+            }
+            Ok::<_, datafusion::error::DataFusionError>((name.clone(), p))
+        })
+    });
+    let sources: BTreeMap<String, SourceProvenance> = futures::future::try_join_all(reads)
+        .await?
+        .into_iter()
+        .collect();
     Ok(Provenance {
         day: day.to_string(),
         cutoff: rfc3339(q.cutoff),
