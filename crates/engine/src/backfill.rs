@@ -652,17 +652,21 @@ pub fn range_query(
                 "__pt, __ps"
             };
             let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
+            // Each change gets its rank in the change log's order, doubled, plus 1 when
+            // it enters the population: the greatest of these among the changes visible
+            // on a day is the latest change, and its last bit says whether the key is in
+            // the population (one read of the source's rows, no join back to them).
             ctes.push(format!(
-                "__pop_rows AS (SELECT __key, __vn, __ps, row_number() OVER (PARTITION BY __key ORDER BY {order}) AS __prk FROM {})",
+                "__pop_rows AS (SELECT __key, __vn, row_number() OVER (PARTITION BY __key ORDER BY {order}) * 2 + CASE WHEN __ps IN ({}) THEN 1 ELSE 0 END AS __prk FROM {})",
+                values.join(", "),
                 rows_of(&s.source)
             ));
             ctes.push(format!(
                 "__pop_runs AS (SELECT __key, __vn AS __from, lead(__vn) OVER (PARTITION BY __key ORDER BY __vn) AS __next, {RUNNING_MAX}(__prk) OVER (PARTITION BY __key ORDER BY __vn) AS __prk FROM (SELECT __key, __vn, MAX(__prk) AS __prk FROM __pop_rows GROUP BY __key, __vn))"
             ));
             ctes.push(format!(
-                "__pop_spans AS (SELECT r.__key, {} FROM __pop_runs r JOIN __pop_rows x ON x.__key = r.__key AND x.__prk = r.__prk WHERE x.__ps IN ({}))",
-                span("r.__from", "r.__next"),
-                values.join(", ")
+                "__pop_spans AS (SELECT __key, {} FROM __pop_runs WHERE __prk % 2 = 1)",
+                span("__from", "__next")
             ));
         }
         Population::RecentActivity(a) => {
