@@ -686,13 +686,13 @@ pub fn range_query(
             ));
         }
     }
+    if direct_features(pipeline, types) {
+        return direct_tail(pipeline, layouts, &reads_last, types, ctes);
+    }
     ctes.push(
         "__spine AS (SELECT __key, unnest(range(__s, __e + 1)) AS __dn FROM __pop_spans WHERE __s <= __e)"
             .to_string(),
     );
-    if direct_features(pipeline, types) {
-        return direct_tail(pipeline, layouts, &reads_last, types, ctes);
-    }
 
     // The UNION of contributions: +/- rows, expanded late rows, and the spine (kind 1).
     let mut branches: Vec<Branch> = Vec::new();
