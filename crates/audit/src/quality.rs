@@ -225,7 +225,7 @@ impl StagedCheck for DailyChecks {
         Box::pin(async move {
             self.run(ctx, out, staged, day, rows)
                 .await
-                .map_err(|e| e.to_string())
+                .map_err(|e| format!("checking the staged snapshot failed: {e}"))
         })
     }
 }

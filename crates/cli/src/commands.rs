@@ -197,6 +197,7 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     };
     let result = build_locked(
         &args,
+        &guard,
         &pipeline,
         &reports,
         &types,
@@ -220,6 +221,7 @@ const BUILD_LOCK_LEASE: std::time::Duration = std::time::Duration::from_secs(120
 #[allow(clippy::too_many_arguments)]
 async fn build_locked(
     args: &BuildArgs,
+    guard: &daymark_runner::lock::LockGuard,
     pipeline: &Pipeline,
     reports: &BTreeMap<String, SourceReport>,
     types: &daymark_engine::FeatureTypes,
@@ -297,7 +299,12 @@ async fn build_locked(
     }
     let mut rows = 0u64;
     let mut warnings = 0usize;
-    let staged_checks = daymark_audit::quality::DailyChecks::new(pipeline, mode);
+    let daily_checks = daymark_audit::quality::DailyChecks::new(pipeline, mode);
+    // Each snapshot is published only while the output lock is still this build's.
+    let staged_checks = daymark_runner::lock::LeaseCheck {
+        guard,
+        then: Some(&daily_checks),
+    };
     if tiled && days.len() > 1 {
         // A backfill: every day from one set-based query over the tiles, or day by day
         // from pieces where that is cheaper (`build_days`).
@@ -328,6 +335,9 @@ async fn build_locked(
         // window would read are rolled up by the first build that needs them (they were
         // all rolled up here before: 13 months of plays where a 91-day window reads 2,
         // most of the roll-up time; docs/benchmarks.md, eleventh measurement).
+        if let Err(why) = guard.held() {
+            anyhow::bail!("{why}; roll-ups not built, stopped before writing more");
+        }
         let t_roll = std::time::Instant::now();
         let next = days[days.len() - 1] + chrono::Duration::days(1);
         match daymark_engine::rollups::plan_day(&ctx, pipeline, reports, &layouts, out, next, mode)

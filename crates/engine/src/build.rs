@@ -56,8 +56,9 @@ pub enum BuildError {
         /// Why.
         reason: String,
     },
-    /// A check of the staged snapshot could not run; nothing was published.
-    #[error("day {day}: checking the staged snapshot failed: {reason}")]
+    /// A check of the staged snapshot could not run, or the run may no longer publish (its
+    /// output lock is no longer its own); nothing was published.
+    #[error("day {day}: not published: {reason}")]
     Check {
         /// The snapshot day.
         day: NaiveDate,

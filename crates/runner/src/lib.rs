@@ -41,7 +41,8 @@ pub enum RunnerError {
     /// The engine could not start or register the sources.
     #[error("engine: {0}")]
     Engine(#[from] datafusion::error::DataFusionError),
-    /// Another run took the lock while this one worked (its lease was not renewed in time).
-    #[error("the output lock was taken over by another run: {0}; stopped before publishing more")]
+    /// The lock stopped being this run's while it worked (taken over by another run, or its
+    /// lease not renewed in time).
+    #[error("{0}; stopped before publishing more")]
     LockLost(String),
 }

@@ -9,7 +9,9 @@
 
 use crate::ledger::RunIdentity;
 use crate::RunnerError;
-use chrono::{DateTime, Utc};
+use chrono::{DateTime, NaiveDate, Utc};
+use datafusion::prelude::SessionContext;
+use daymark_engine::build::{StagedCheck, StagedCheckFuture};
 use daymark_store::object_store::path::Path as StorePath;
 use daymark_store::object_store::{self, ObjectStoreExt, PutMode, PutPayload};
 use daymark_store::Location;
@@ -68,6 +70,8 @@ pub struct LockGuard {
     out: Location,
     info: LockInfo,
     lost: Arc<AtomicBool>,
+    /// When the lease ends as last written by this run (taken, or renewed since).
+    lease_end: Arc<std::sync::Mutex<DateTime<Utc>>>,
     renewer: tokio::task::JoinHandle<()>,
 }
 
@@ -247,10 +251,14 @@ pub async fn acquire(
 impl LockGuard {
     fn start(out: &Location, info: LockInfo, lease: Duration) -> LockGuard {
         let lost = Arc::new(AtomicBool::new(false));
+        let lease_end = Arc::new(std::sync::Mutex::new(
+            info.expiry().unwrap_or_else(Utc::now),
+        ));
         let renewer = {
             let out = out.clone();
             let mut info = info.clone();
             let lost = lost.clone();
+            let lease_end = lease_end.clone();
             tokio::spawn(async move {
                 let every = (lease / 3).max(Duration::from_millis(200));
                 loop {
@@ -263,14 +271,19 @@ impl LockGuard {
                         }
                         Err(_) => continue, // a passing store error: try again next time
                     }
-                    info.expires = (Utc::now()
-                        + chrono::Duration::from_std(lease).unwrap_or(chrono::Duration::MAX))
-                    .to_rfc3339();
+                    let end = Utc::now()
+                        + chrono::Duration::from_std(lease).unwrap_or(chrono::Duration::MAX);
+                    info.expires = end.to_rfc3339();
                     let body = serde_json::to_vec_pretty(&info).expect("a lock serialises");
-                    let _ = out
+                    let renewed = out
                         .store
                         .put(&lock_path(&out), PutPayload::from(body))
                         .await;
+                    if renewed.is_ok() {
+                        if let Ok(mut e) = lease_end.lock() {
+                            *e = end;
+                        }
+                    }
                 }
             })
         };
@@ -278,6 +291,7 @@ impl LockGuard {
             out: out.clone(),
             info,
             lost,
+            lease_end,
             renewer,
         }
     }
@@ -290,6 +304,38 @@ impl LockGuard {
     /// True once another run has taken the lock from us (our lease ran out unrenewed).
     pub fn lost(&self) -> bool {
         self.lost.load(Ordering::SeqCst)
+    }
+
+    /// Whether the lock is still ours to publish under: not taken by another run, and its
+    /// lease (as this run last wrote it) not ended. A lease can end unrenewed while the
+    /// renewing task waits behind a busy machine; another run may then take the lock at any
+    /// moment, so a run must not publish again until a renewal has gone through. Err says
+    /// why, for people.
+    pub fn held(&self) -> Result<(), String> {
+        if self.lost() {
+            return Err(format!(
+                "the output lock was taken over by another run (this run: {})",
+                self.info.owner
+            ));
+        }
+        let end = self
+            .lease_end
+            .lock()
+            .map(|e| *e)
+            .unwrap_or_else(|_| Utc::now());
+        if Utc::now() >= end {
+            return Err(format!(
+                "this run's lease on the output lock ended at {} without being renewed",
+                end.to_rfc3339()
+            ));
+        }
+        Ok(())
+    }
+
+    /// [`LockGuard::held`] as a [`RunnerError::LockLost`].
+    pub fn ensure_held(&self) -> Result<(), RunnerError> {
+        self.held()
+            .map_err(|why| RunnerError::LockLost(format!("{why}; it was {}", self.info.describe())))
     }
 
     /// Stops renewing and removes the lock (and finished takeover claims) if still ours.
@@ -321,6 +367,35 @@ impl LockGuard {
             Ok(()) | Err(object_store::Error::NotFound { .. }) => Ok(()),
             Err(e) => Err(store_err(&path, e)),
         }
+    }
+}
+
+/// The checks run on each staged snapshot before it is published, after a check that the
+/// lock is still ours ([`LockGuard::held`]): a run that lost its lock publishes nothing more
+/// (the staged file is deleted and the build stops with the reason).
+pub struct LeaseCheck<'a> {
+    /// The lock the run holds.
+    pub guard: &'a LockGuard,
+    /// The checks to run next (`DailyChecks`), if any.
+    pub then: Option<&'a dyn StagedCheck>,
+}
+
+impl StagedCheck for LeaseCheck<'_> {
+    fn check<'a>(
+        &'a self,
+        ctx: &'a SessionContext,
+        out: &'a Location,
+        staged: &'a StorePath,
+        day: NaiveDate,
+        rows: u64,
+    ) -> StagedCheckFuture<'a> {
+        Box::pin(async move {
+            self.guard.held()?;
+            match self.then {
+                Some(c) => c.check(ctx, out, staged, day, rows).await,
+                None => Ok((Vec::new(), Vec::new())),
+            }
+        })
     }
 }
 
@@ -386,6 +461,69 @@ mod tests {
         // The lock now names the run that took it over.
         assert_eq!(read(&out).await.unwrap().unwrap().0.owner, me.run_id);
         g.release().await.unwrap();
+    }
+
+    /// A run may publish only while the lock is its own: not after its lease ended
+    /// unrenewed, nor after another run took the lock over; the check before each publish
+    /// ([`LeaseCheck`]) refuses with the reason.
+    #[tokio::test]
+    async fn no_publishing_once_the_lease_has_ended_or_the_lock_was_taken() {
+        let dir = tempfile::tempdir().unwrap();
+        let out = daymark_store::resolve(dir.path().to_str().unwrap(), None).unwrap();
+        let ctx = SessionContext::new();
+        let staged = daymark_engine::build::child(&out.prefix, &["staged.parquet"]);
+        let day = NaiveDate::from_ymd_opt(2026, 1, 5).unwrap();
+        let me = RunIdentity::current();
+        let Acquire::Acquired(g, None) = acquire(&out, &me, "build", Duration::from_secs(60))
+            .await
+            .unwrap()
+        else {
+            panic!("a free lock is taken");
+        };
+        assert_eq!(g.held(), Ok(()));
+        let check = LeaseCheck {
+            guard: &g,
+            then: None,
+        };
+        assert_eq!(
+            check.check(&ctx, &out, &staged, day, 0).await,
+            Ok((vec![], vec![]))
+        );
+        g.release().await.unwrap();
+
+        // A lease of 1 ms, not yet renewed (the first renewal comes after 200 ms).
+        let Acquire::Acquired(slow, _) = acquire(&out, &me, "build", Duration::from_millis(1))
+            .await
+            .unwrap()
+        else {
+            panic!("free");
+        };
+        tokio::time::sleep(Duration::from_millis(20)).await;
+        let why = LeaseCheck {
+            guard: &slow,
+            then: None,
+        }
+        .check(&ctx, &out, &staged, day, 0)
+        .await
+        .unwrap_err();
+        assert!(why.contains("without being renewed"), "{why}");
+        // Another run takes the expired lock over: the first run's guard says so once its
+        // renewing task has looked (and, before that, that its lease ended).
+        let other = run_as(1, "elsewhere");
+        let Acquire::Acquired(taker, Some(_)) =
+            acquire(&out, &other, "run", Duration::from_secs(60))
+                .await
+                .unwrap()
+        else {
+            panic!("an expired lock is taken over");
+        };
+        assert!(slow.held().is_err());
+        tokio::time::sleep(Duration::from_millis(400)).await;
+        let err = slow.ensure_held().unwrap_err().to_string();
+        assert!(err.contains("taken over by another run"), "{err}");
+        assert!(err.contains("stopped before publishing more"), "{err}");
+        drop(slow);
+        taker.release().await.unwrap();
     }
 
     #[tokio::test]

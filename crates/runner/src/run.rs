@@ -412,9 +412,7 @@ async fn locked(
     }
     let stopped = summary.outcome == RunOutcome::Stopped;
     if labels_due(&plan) > 0 && !stopped {
-        if guard.lost() {
-            return Err(RunnerError::LockLost(guard.info().describe()));
-        }
+        guard.ensure_held()?;
         back_fill_labels(pipeline, out, opts, me, on).await?;
         if days.is_empty() {
             summary.outcome = RunOutcome::Done;
@@ -493,6 +491,11 @@ async fn build_days(
     let scope = plan::scope_of(opts.mode);
     // Population change and drift checks on every snapshot, as `daymark build` runs them.
     let checks = daymark_audit::quality::DailyChecks::new(pipeline, opts.mode);
+    // Each snapshot is published only while the lock is still ours.
+    let checks = crate::lock::LeaseCheck {
+        guard,
+        then: Some(&checks),
+    };
     // Consecutive days are built together (as `daymark build` builds a range), in runs
     // short enough that a stop or a lost lock is noticed soon.
     let new_entry = |day: NaiveDate| {
@@ -509,9 +512,7 @@ async fn build_days(
             summary.outcome = RunOutcome::Stopped;
             return Ok(());
         }
-        if guard.lost() {
-            return Err(RunnerError::LockLost(guard.info().describe()));
-        }
+        guard.ensure_held()?;
         let mut end = next + 1;
         while end < days.len()
             && end - next < DAYS_PER_RANGE
@@ -577,6 +578,8 @@ async fn build_days(
                 next = days.iter().position(|d| *d == day).map_or(end, |p| p + 1);
             }
             Err(e) => {
+                // Another run may own the output now: write nothing more to it.
+                guard.ensure_held()?;
                 // `next` is the first day of the run that was not published.
                 let mut entry = new_entry(days[next]);
                 entry.outcome = Outcome::Failed;
