@@ -229,8 +229,8 @@ fn totals(
     window: Option<i64>,
     rows: &[TileRow],
     days: &[i64],
-    out: &mut Vec<i128>,
-) -> Result<()> {
+) -> Result<Vec<Option<i128>>> {
+    let mut out = Vec::with_capacity(days.len());
     let mut visible = Visible::new(kind, rows);
     let mut shown = vec![false; rows.len()];
     // Rows in the window not visible yet, by first visible day.
@@ -268,53 +268,43 @@ fn totals(
             }
         }
         out.push(match kind {
-            WindowKind::Sum if visible.rows > 0 => visible.sum,
-            WindowKind::Sum => NULL_X,
-            WindowKind::Days => visible.days as i128,
-            WindowKind::FirstDay => visible.first.map_or(NULL_X, i128::from),
-            WindowKind::LastDay => visible.last.map_or(NULL_X, i128::from),
+            WindowKind::Sum => (visible.rows > 0).then_some(visible.sum),
+            WindowKind::Days => Some(visible.days as i128),
+            WindowKind::FirstDay => visible.first.map(i128::from),
+            WindowKind::LastDay => visible.last.map(i128::from),
         });
     }
-    Ok(())
+    Ok(out)
 }
 
-/// The results (NULL as [`NULL_X`]) as an array of `out`'s type (an error where a total
-/// does not fit).
-fn to_array(out: &DataType, values: Vec<i128>) -> Result<ArrayRef> {
-    use datafusion::arrow::buffer::NullBuffer;
+/// The results as an array of `out`'s type (an error where a total does not fit).
+fn to_array(out: &DataType, values: Vec<Option<i128>>) -> Result<ArrayRef> {
     let overflow = || exec_err!("{WINDOW_TOTALS}: the total does not fit {out}");
-    let nulls = values
-        .contains(&NULL_X)
-        .then(|| NullBuffer::from_iter(values.iter().map(|x| *x != NULL_X)));
     Ok(match out {
         DataType::Int64 => {
             let mut v = Vec::with_capacity(values.len());
-            for &x in &values {
-                match i64::try_from(x) {
-                    Ok(x) => v.push(x),
-                    Err(_) if x == NULL_X => v.push(0),
-                    Err(_) => return overflow(),
-                }
+            for x in values {
+                v.push(match x.map(i64::try_from) {
+                    None => None,
+                    Some(Ok(x)) => Some(x),
+                    Some(Err(_)) => return overflow(),
+                });
             }
-            Arc::new(Int64Array::new(v.into(), nulls))
+            Arc::new(Int64Array::from(v))
         }
         DataType::UInt64 => {
             let mut v = Vec::with_capacity(values.len());
-            for &x in &values {
-                match u64::try_from(x) {
-                    Ok(x) => v.push(x),
-                    Err(_) if x == NULL_X => v.push(0),
-                    Err(_) => return overflow(),
-                }
+            for x in values {
+                v.push(match x.map(u64::try_from) {
+                    None => None,
+                    Some(Ok(x)) => Some(x),
+                    Some(Err(_)) => return overflow(),
+                });
             }
-            Arc::new(UInt64Array::new(v.into(), nulls))
+            Arc::new(UInt64Array::from(v))
         }
         DataType::Decimal128(p, s) => {
-            let mut values = values;
-            for x in values.iter_mut().filter(|x| **x == NULL_X) {
-                *x = 0;
-            }
-            let a = Decimal128Array::new(values.into(), nulls);
+            let a: PrimitiveArray<Decimal128Type> = Decimal128Array::from(values);
             Arc::new(a.with_precision_and_scale(*p, *s)?)
         }
         other => return exec_err!("window totals: no output of type {other}"),
@@ -608,17 +598,11 @@ impl GroupsAccumulator for KeyTotals {
         let slots = self.slot_args.len();
         let mut offsets: Vec<i32> = Vec::with_capacity(keys.len() + 1);
         offsets.push(0);
-        // Every key's snapshot days first, so that the outputs are allocated once at
-        // their final size (growing them took more time than computing them: page faults
-        // and copies, measured in docs/benchmarks.md sixteenth measurement).
-        let day_lists: Vec<Vec<i64>> = keys.iter().map(Self::days).collect();
-        let total: usize = day_lists.iter().map(Vec::len).sum();
-        let mut dn: Vec<i64> = Vec::with_capacity(total);
-        let mut outs: Vec<Vec<i128>> = (0..self.outputs.len())
-            .map(|_| Vec::with_capacity(total))
-            .collect();
+        let mut dn: Vec<i64> = Vec::new();
+        let mut outs: Vec<Vec<Option<i128>>> = vec![Vec::new(); self.outputs.len()];
         let mut rows: Vec<TileRow> = Vec::new();
-        for (k, days) in keys.iter().zip(day_lists) {
+        for k in &keys {
+            let days = Self::days(k);
             // Tile rows in event-day order, shared by all outputs.
             let mut order: Vec<usize> = (0..k.tn.len()).collect();
             if !k.tn.is_sorted() {
@@ -634,7 +618,7 @@ impl GroupsAccumulator for KeyTotals {
                         x,
                     })
                 }));
-                totals(o.kind, o.window, &rows, &days, values)?;
+                values.extend(totals(o.kind, o.window, &rows, &days)?);
             }
             let Ok(end) = i32::try_from(dn.len() + days.len()) else {
                 return exec_err!("{WINDOW_TOTALS}: too many snapshot rows in one batch");
