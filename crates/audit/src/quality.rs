@@ -9,12 +9,12 @@ use crate::tables::{self, collect, count, first_row};
 use crate::AuditError;
 use chrono::{Duration, NaiveDate};
 use datafusion::prelude::SessionContext;
-use daymark_engine::build::{snapshots_dir, StagedCheck, StagedCheckFuture};
-use daymark_engine::sql::{literal, KnowledgeOverride};
+use daymark_engine::build::{snapshots_dir, StagedCheck, StagedCheckFuture, FEATURE_HASHES_KEY};
+use daymark_engine::sql::{ident, literal, KnowledgeOverride};
 use daymark_spec::{OnFail, Pipeline};
 use daymark_store::object_store::path::Path as StorePath;
 use daymark_store::Location;
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, BTreeSet};
 
 /// Table names used while checking.
 const STAGED: &str = "__staged";
@@ -120,12 +120,22 @@ impl DailyChecks {
         if checks.max_population_change.is_none() && checks.drift.is_none() {
             return Ok((fail, warn));
         }
-        let dir = snapshots_dir(self.mode);
-        if !tables::register_dir(ctx, out, dir, PUBLISHED).await? {
-            return Ok((fail, warn));
-        }
-        tables::register_file(ctx, out, staged, STAGED).await?;
         let prev = day - Duration::days(1);
+        let reference = checks
+            .drift
+            .as_ref()
+            .and_then(|d| d.reference.days())
+            .map(|n| day - Duration::days(n as i64));
+        let first = reference.map_or(prev, |r| r.min(prev));
+        tables::register_file(ctx, out, staged, STAGED).await?;
+        let features = tables::numeric_features(ctx, STAGED, &self.pipeline).await?;
+        let Some(comparable) = self
+            .register_published(ctx, out, first, prev, &features)
+            .await?
+        else {
+            let _ = ctx.deregister_table(STAGED);
+            return Ok((fail, warn));
+        };
         let prev_filter = days_filter(prev, prev);
         let prev_rows = count(
             &collect(
@@ -158,13 +168,15 @@ impl DailyChecks {
             }
         }
         if let Some(drift) = &checks.drift {
-            let features = tables::numeric_features(ctx, STAGED, &self.pipeline).await?;
             let mut comparisons = Vec::new();
             if prev_rows > 0 {
-                comparisons.push((format!("the previous day {prev}"), prev_filter.clone()));
+                comparisons.push((
+                    format!("the previous day {prev}"),
+                    prev_filter.clone(),
+                    prev,
+                ));
             }
-            if let Some(n) = drift.reference.days() {
-                let first = day - Duration::days(n as i64);
+            if let Some(first) = reference {
                 let n_ref = count(
                     &collect(
                         ctx,
@@ -180,12 +192,29 @@ impl DailyChecks {
                     comparisons.push((
                         format!("the reference window {first} .. {prev}"),
                         days_filter(first, prev),
+                        first,
                     ));
                 }
             }
-            for (what, filter) in comparisons {
-                let values =
-                    psi_between(ctx, PUBLISHED, &filter, STAGED, "TRUE", &features).await?;
+            for (what, filter, from) in comparisons {
+                // Only features defined as now on every published day compared: a changed
+                // definition is not drift.
+                let (same, changed): (Vec<String>, Vec<String>) =
+                    features.iter().cloned().partition(|f| {
+                        comparable
+                            .range(from..=prev)
+                            .all(|(_, same)| same.contains(f))
+                    });
+                if !changed.is_empty() {
+                    judge(
+                        format!(
+                            "drift: {} not compared with {what}: built under another definition",
+                            changed.join(", ")
+                        ),
+                        false,
+                    );
+                }
+                let values = psi_between(ctx, PUBLISHED, &filter, STAGED, "TRUE", &same).await?;
                 for (f, v) in values {
                     if v >= drift.fail {
                         judge(
@@ -209,7 +238,98 @@ impl DailyChecks {
         }
         let _ = ctx.deregister_table(STAGED);
         let _ = ctx.deregister_table(PUBLISHED);
+        for i in 0..comparable.len() {
+            let _ = ctx.deregister_table(format!("{PUBLISHED}_{i}"));
+        }
         Ok((fail, warn))
+    }
+
+    /// Registers as [`PUBLISHED`] the published days `first..=prev` (`dt`, then each of
+    /// `features` as a double), one table per day file under it. Returns, per day, the
+    /// features whose definition that day was built under is today's (by the hashes in its
+    /// footer; a file written before they were kept counts as today's when it has the
+    /// column as a number); `None` when no day of the range is published.
+    ///
+    /// Only these days are read, and each with its own schema: a feature whose type changed
+    /// with its definition would make one table over all published days fail to open.
+    async fn register_published(
+        &self,
+        ctx: &SessionContext,
+        out: &Location,
+        first: NaiveDate,
+        prev: NaiveDate,
+        features: &[String],
+    ) -> Result<Option<BTreeMap<NaiveDate, BTreeSet<String>>>, AuditError> {
+        let published = tables::published_days(out, snapshots_dir(self.mode)).await?;
+        let current: BTreeMap<&str, &str> = self
+            .pipeline
+            .features
+            .iter()
+            .map(|f| (f.name.as_str(), f.hash.as_str()))
+            .collect();
+        let mut comparable: BTreeMap<NaiveDate, BTreeSet<String>> = BTreeMap::new();
+        let mut branches = Vec::new();
+        for (day, files) in published.range(first..=prev) {
+            let same = comparable
+                .entry(*day)
+                .or_insert_with(|| features.iter().cloned().collect());
+            for file in files {
+                let footer =
+                    daymark_store::read_footer(out, file)
+                        .await
+                        .map_err(|e| AuditError::Store {
+                            path: file.path.to_string(),
+                            reason: e.to_string(),
+                        })?;
+                let hashes: Option<BTreeMap<String, String>> = footer
+                    .schema
+                    .metadata()
+                    .get(FEATURE_HASHES_KEY)
+                    .and_then(|t| serde_json::from_str(t).ok());
+                same.retain(|f| {
+                    let numeric = footer
+                        .schema
+                        .field_with_name(f)
+                        .is_ok_and(|c| tables::is_numeric(c.data_type()));
+                    let defined_alike = hashes.as_ref().is_none_or(|h| {
+                        h.get(f).map(String::as_str) == current.get(f.as_str()).copied()
+                    });
+                    numeric && defined_alike
+                });
+                let table = format!("{PUBLISHED}_{}", branches.len());
+                tables::register_file(ctx, out, &file.path, &table).await?;
+                branches.push((*day, table, footer.schema));
+            }
+        }
+        if branches.is_empty() {
+            return Ok(None);
+        }
+        let selects: Vec<String> = branches
+            .iter()
+            .map(|(day, table, schema)| {
+                let mut cols = vec![format!("{} AS dt", literal(&day.to_string()))];
+                for f in features {
+                    let numeric = schema
+                        .field_with_name(f)
+                        .is_ok_and(|c| tables::is_numeric(c.data_type()));
+                    cols.push(if numeric && comparable[day].contains(f) {
+                        format!("CAST({} AS DOUBLE) AS {}", ident(f), ident(f))
+                    } else {
+                        format!("CAST(NULL AS DOUBLE) AS {}", ident(f))
+                    });
+                }
+                format!("SELECT {} FROM {}", cols.join(", "), ident(table))
+            })
+            .collect();
+        let view = ctx
+            .sql(&selects.join(" UNION ALL "))
+            .await
+            .map_err(crate::engine("published days"))?
+            .into_view();
+        let _ = ctx.deregister_table(PUBLISHED);
+        ctx.register_table(PUBLISHED, view)
+            .map_err(crate::engine("published days"))?;
+        Ok(Some(comparable))
     }
 }
 

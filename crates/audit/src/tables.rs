@@ -74,7 +74,17 @@ pub async fn register_dir(
         Ok::<_, datafusion::error::DataFusionError>(())
     }
     .await;
-    result.map_err(engine(format!("reading {}", loc.display())))?;
+    result.map_err(|e| {
+        // Days built before and after a feature changed type cannot be read as one table.
+        let hint = if e.to_string().contains("Fail to merge schema") {
+            " (published days disagree on a column's type: a feature's definition changed \
+             since some of them were built; rebuild the stale days, which `daymark status` \
+             lists, with `daymark run`)"
+        } else {
+            ""
+        };
+        engine(format!("reading {}{hint}", loc.display()))(e)
+    })?;
     Ok(true)
 }
 

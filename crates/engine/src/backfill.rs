@@ -1518,6 +1518,7 @@ impl<F: FnMut(&DayReport)> Publisher<'_, F> {
                 )
             })
             .into_iter()
+            .chain([crate::build::feature_hashes(&self.pipeline)])
             .collect();
         let pipeline = self.pipeline.clone();
         let (tx, mut rx) = tokio::sync::mpsc::channel::<RecordBatch>(4);

@@ -85,6 +85,24 @@ pub fn snapshots_dir(mode: KnowledgeOverride) -> &'static str {
     }
 }
 
+/// Key of the snapshot file's key-value metadata holding the hash of each feature's
+/// definition (a JSON object, feature name to hash), so that later checks compare a
+/// feature only with days built under the same definition.
+pub const FEATURE_HASHES_KEY: &str = "daymark.feature_hashes";
+
+/// The [`FEATURE_HASHES_KEY`] metadata entry of `pipeline`'s snapshots.
+pub fn feature_hashes(pipeline: &Pipeline) -> (String, String) {
+    let hashes: BTreeMap<&str, &str> = pipeline
+        .features
+        .iter()
+        .map(|f| (f.name.as_str(), f.hash.as_str()))
+        .collect();
+    (
+        FEATURE_HASHES_KEY.to_string(),
+        serde_json::to_string(&hashes).unwrap_or_default(),
+    )
+}
+
 /// `base/part1/part2/...`.
 pub fn child(base: &StorePath, parts: &[&str]) -> StorePath {
     let mut p = base.clone();
@@ -625,10 +643,13 @@ pub async fn build_day_checked(
     let prov = crate::provenance::provenance(ctx, pipeline, day, mode, tiles)
         .await
         .map_err(|source| BuildError::Engine { day, source })?;
-    let metadata = vec![(
-        crate::provenance::METADATA_KEY.to_string(),
-        serde_json::to_string(&prov).expect("provenance serialises"),
-    )];
+    let metadata = vec![
+        (
+            crate::provenance::METADATA_KEY.to_string(),
+            serde_json::to_string(&prov).expect("provenance serialises"),
+        ),
+        feature_hashes(pipeline),
+    ];
     let (rows, bytes, warnings) = write_query_with(
         ctx,
         sql,
