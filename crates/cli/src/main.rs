@@ -9,6 +9,7 @@ mod report;
 mod report_cmd;
 mod run_cmd;
 mod status_cmd;
+mod tidy_cmd;
 mod watch_cmd;
 
 use clap::{Parser, Subcommand};
@@ -130,6 +131,12 @@ enum Command {
         after_help = "Example:\n  daymark watch pipelines/demo.yaml --interval 30s --listen 127.0.0.1:9797"
     )]
     Watch(watch_cmd::WatchArgs),
+    /// List the tile folders the pipeline no longer reads (left by changed definitions);
+    /// remove them with --apply.
+    #[command(
+        after_help = "Example:\n  daymark tidy pipelines/demo.yaml\n  daymark tidy pipelines/demo.yaml --apply"
+    )]
+    Tidy(tidy_cmd::TidyArgs),
     /// Print the JSON Schema of pipeline files (for editors).
     #[command(after_help = "Example:\n  daymark schema > pipeline.schema.json")]
     Schema,
@@ -149,7 +156,7 @@ pub mod exit {
     pub const NOTHING_DUE: u8 = 10;
     /// `run`: nothing could be done yet; inputs are not complete.
     pub const WAITING: u8 = 11;
-    /// `run`: another run holds the output lock.
+    /// `run`, `build`, `tidy --apply`: another run holds the output lock.
     pub const LOCK_HELD: u8 = 12;
 }
 
@@ -189,6 +196,7 @@ fn main() -> ExitCode {
             Command::Run(args) => run_cmd::run(args).await,
             Command::Status(args) => status_cmd::status(args).await,
             Command::Watch(args) => watch_cmd::watch_cmd(args).await,
+            Command::Tidy(args) => tidy_cmd::tidy(args).await,
             Command::Schema => {
                 print!("{}", daymark_spec::json_schema());
                 Ok(exit::OK)

@@ -115,7 +115,7 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     // partition of each source (a day reads partitions up to its own: rows are filed by
     // event day, and a snapshot sees event days before its own).
     let out_dir = dir.path().join("out");
-    let build = |day: &str| {
+    let build_events = |day: &str| {
         let out = daymark()
             .args([
                 "build",
@@ -134,11 +134,16 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
             "{}",
             String::from_utf8_lossy(&out.stderr)
         );
-        let events: Vec<serde_json::Value> = String::from_utf8_lossy(&out.stdout)
+        String::from_utf8_lossy(&out.stdout)
             .lines()
             .map(|l| serde_json::from_str(l).unwrap())
-            .collect();
-        events.into_iter().find(|e| e["event"] == "read").unwrap()
+            .collect::<Vec<serde_json::Value>>()
+    };
+    let build = |day: &str| {
+        build_events(day)
+            .into_iter()
+            .find(|e| e["event"] == "read")
+            .unwrap()
     };
     let first = build("2026-03-30");
     assert!(first["raw_files"].as_u64().unwrap() > 100, "{first}");
@@ -235,6 +240,140 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
         .join("snapshots/dt=2026-03-29/part-0.parquet")
         .exists());
     assert!(!lock.exists(), "the lock is released");
+
+    // A changed definition gives the plays tiles a new folder; `tidy` lists the old ones
+    // (and only those) and removes them with `--apply`, under the lock.
+    let edited = std::fs::read_to_string(&pipeline)
+        .unwrap()
+        .replace("expr: seconds_played / 60.0", "expr: seconds_played / 60");
+    assert!(edited.contains("seconds_played / 60\n"));
+    std::fs::write(&pipeline, edited).unwrap();
+    let events = build_events("2026-03-31");
+    let rebuilt = events.iter().find(|e| e["event"] == "read").unwrap();
+    // Every plays partition again (40 days), nothing of the other sources.
+    assert_eq!(rebuilt["partitions_built"], 40, "{rebuilt}");
+    // The published days before it hold minutes_watched as a double, now it is an integer:
+    // the daily drift checks leave the changed features out (they are not drift) instead
+    // of failing to read the published days.
+    let snapshot = events.iter().find(|e| e["event"] == "snapshot").unwrap();
+    let warnings: Vec<&str> = snapshot["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap())
+        .collect();
+    // The features of pipelines/demo.yaml over `seconds_played / 60.0`, and the ones
+    // derived from them (a derived feature's hash covers its operands).
+    let changed = "minutes_watched_7d, minutes_watched_28d, minutes_watched_91d, phone_minutes_7d, phone_minutes_28d, tv_minutes_28d, longest_play_minutes_28d, minutes_watched_28d_log, minutes_trend_7_28, minutes_per_play_28d";
+    assert_eq!(
+        warnings,
+        [
+            format!("drift: {changed} not compared with the previous day 2026-03-30: built under another definition"),
+            format!("drift: {changed} not compared with the reference window 2026-03-03 .. 2026-03-30: built under another definition"),
+        ],
+        "{snapshot}"
+    );
+    // An audit over days of both definitions says why it cannot read them.
+    let audit = daymark()
+        .args(["audit", pipeline.to_str().unwrap()])
+        .args(["--outputs", out_dir.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&audit.stderr);
+    assert_eq!(audit.status.code(), Some(1), "{stderr}");
+    assert!(
+        stderr.contains("published days disagree on a column's type: a feature's definition changed since some of them were built"),
+        "{stderr}"
+    );
+    let tidy = |extra: &[&str]| {
+        daymark()
+            .args(["tidy", pipeline.to_str().unwrap(), "--json"])
+            .args(["--out", out_dir.to_str().unwrap()])
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let listed = tidy(&[]);
+    assert_eq!(listed.status.code(), Some(0));
+    let report: serde_json::Value = serde_json::from_slice(&listed.stdout).unwrap();
+    let unused = report["unused"].as_array().unwrap();
+    let tile_folders = |source: &str| -> Vec<String> {
+        let mut v: Vec<String> = std::fs::read_dir(out_dir.join("tiles").join(source))
+            .unwrap()
+            .map(|e| {
+                format!(
+                    "tiles/{source}/{}",
+                    e.unwrap().file_name().to_string_lossy()
+                )
+            })
+            .collect();
+        v.sort();
+        v
+    };
+    let plays_before = tile_folders("plays");
+    let listed_paths: Vec<&str> = unused.iter().map(|u| u["path"].as_str().unwrap()).collect();
+    // The old day tiles and the old distinct-value tiles at least; each listed folder's
+    // file count is what is on disk; no other source is touched.
+    assert!(listed_paths.len() >= 2, "{report}");
+    assert!(listed_paths.len() < plays_before.len(), "{report}");
+    for u in unused {
+        let path = u["path"].as_str().unwrap();
+        assert!(path.starts_with("tiles/plays/"), "{report}");
+        assert_eq!(
+            u["files"].as_u64(),
+            Some(count_files(&out_dir.join(path))),
+            "{path}"
+        );
+        assert_eq!(u["removed"], false);
+    }
+    assert!(listed_paths
+        .iter()
+        .all(|p| plays_before.contains(&p.to_string())));
+    // Nothing removed without --apply, nor while another run holds the lock.
+    assert_eq!(tile_folders("plays"), plays_before);
+    std::fs::write(&lock, lock_text("2999-01-01T00:00:00+00:00")).unwrap();
+    let held = tidy(&["--apply"]);
+    assert_eq!(held.status.code(), Some(12));
+    assert_eq!(tile_folders("plays"), plays_before);
+    std::fs::remove_file(&lock).unwrap();
+    let applied = tidy(&["--apply"]);
+    assert_eq!(
+        applied.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&applied.stderr)
+    );
+    let report: serde_json::Value = serde_json::from_slice(&applied.stdout).unwrap();
+    assert!(report["unused"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .all(|u| u["removed"] == true));
+    let plays_after = tile_folders("plays");
+    assert_eq!(plays_after.len(), plays_before.len() - listed_paths.len());
+    assert!(plays_after
+        .iter()
+        .all(|p| !listed_paths.contains(&p.as_str())));
+    // What the pipeline reads is all still there: a rebuild reads no raw file.
+    let again = build("2026-03-31");
+    assert_eq!(again["raw_files"], 0, "{again}");
+    let report: serde_json::Value = serde_json::from_slice(&tidy(&[]).stdout).unwrap();
+    assert_eq!(report["unused"], serde_json::json!([]));
+}
+
+/// Files of any kind under `dir`.
+fn count_files(dir: &Path) -> u64 {
+    std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| {
+            let p = e.unwrap().path();
+            if p.is_dir() {
+                count_files(&p)
+            } else {
+                1
+            }
+        })
+        .sum()
 }
 
 fn walk(dir: &Path) -> Vec<std::path::PathBuf> {

@@ -13,6 +13,7 @@
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
 //! - [`rollups`]: tiles of whole weeks and months, and the pieces a daily snapshot reads.
+//! - [`tidy`]: the tile folders a pipeline no longer reads, listed and removed.
 //! - [`provenance`]: per source, the latest event and arrival time a snapshot read.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).
 
@@ -25,6 +26,7 @@ pub mod rollups;
 pub mod session;
 pub mod sources;
 pub mod sql;
+pub mod tidy;
 pub mod tiles;
 pub mod time;
 pub mod window_totals;

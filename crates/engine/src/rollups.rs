@@ -158,7 +158,13 @@ pub fn dir(layout: &TileLayout, pipeline: &Pipeline, out: &Location, level: Leve
     )
 }
 
-fn distinct_dir(layout: &TileLayout, out: &Location, feature: usize, level: Level) -> StorePath {
+/// Folder of the `level` roll-ups of distinct-value tile `feature`.
+pub(crate) fn distinct_dir(
+    layout: &TileLayout,
+    out: &Location,
+    feature: usize,
+    level: Level,
+) -> StorePath {
     child(
         &out.prefix,
         &[
