@@ -8,13 +8,19 @@ use crate::psi;
 use crate::tables::{self, collect, count, first_row};
 use crate::AuditError;
 use chrono::{Duration, NaiveDate};
+use datafusion::arrow::datatypes::{DataType, Field, Schema};
+use datafusion::datasource::file_format::parquet::ParquetFormat;
+use datafusion::datasource::listing::{
+    ListingOptions, ListingTable, ListingTableConfig, ListingTableUrl,
+};
 use datafusion::prelude::SessionContext;
 use daymark_engine::build::{snapshots_dir, StagedCheck, StagedCheckFuture, FEATURE_HASHES_KEY};
-use daymark_engine::sql::{ident, literal, KnowledgeOverride};
+use daymark_engine::sql::{literal, KnowledgeOverride};
 use daymark_spec::{OnFail, Pipeline};
 use daymark_store::object_store::path::Path as StorePath;
 use daymark_store::Location;
 use std::collections::{BTreeMap, BTreeSet};
+use std::sync::Arc;
 
 /// Table names used while checking.
 const STAGED: &str = "__staged";
@@ -91,6 +97,16 @@ pub fn days_filter(from: NaiveDate, to: NaiveDate) -> String {
     )
 }
 
+/// SQL condition selecting snapshot dates `from..=to` of [`PUBLISHED`]: on the files'
+/// own column, so that a query skips the other days' files by their statistics.
+fn dates_filter(from: NaiveDate, to: NaiveDate) -> String {
+    format!(
+        "snapshot_date >= DATE {} AND snapshot_date <= DATE {}",
+        literal(&from.to_string()),
+        literal(&to.to_string())
+    )
+}
+
 /// The checks of every build that compare with published days.
 pub struct DailyChecks {
     pipeline: Pipeline,
@@ -136,7 +152,7 @@ impl DailyChecks {
             let _ = ctx.deregister_table(STAGED);
             return Ok((fail, warn));
         };
-        let prev_filter = days_filter(prev, prev);
+        let prev_filter = dates_filter(prev, prev);
         let prev_rows = count(
             &collect(
                 ctx,
@@ -182,7 +198,7 @@ impl DailyChecks {
                         ctx,
                         &format!(
                             "SELECT COUNT(*) FROM {PUBLISHED} WHERE {}",
-                            days_filter(first, prev)
+                            dates_filter(first, prev)
                         ),
                         "reference rows",
                     )
@@ -191,7 +207,7 @@ impl DailyChecks {
                 if n_ref > 0 {
                     comparisons.push((
                         format!("the reference window {first} .. {prev}"),
-                        days_filter(first, prev),
+                        dates_filter(first, prev),
                         first,
                     ));
                 }
@@ -238,20 +254,18 @@ impl DailyChecks {
         }
         let _ = ctx.deregister_table(STAGED);
         let _ = ctx.deregister_table(PUBLISHED);
-        for i in 0..comparable.len() {
-            let _ = ctx.deregister_table(format!("{PUBLISHED}_{i}"));
-        }
         Ok((fail, warn))
     }
 
-    /// Registers as [`PUBLISHED`] the published days `first..=prev` (`dt`, then each of
-    /// `features` as a double), one table per day file under it. Returns, per day, the
-    /// features whose definition that day was built under is today's (by the hashes in its
-    /// footer; a file written before they were kept counts as today's when it has the
-    /// column as a number); `None` when no day of the range is published.
+    /// Registers as [`PUBLISHED`] the published days `first..=prev` (`snapshot_date`, then
+    /// each of `features` as a double; select days with [`dates_filter`]). Returns, per day, the features whose definition that day
+    /// was built under is today's (by the hashes in its footer; a file written before they
+    /// were kept counts as today's when it has the column as a number); `None` when no day
+    /// of the range is published.
     ///
-    /// Only these days are read, and each with its own schema: a feature whose type changed
-    /// with its definition would make one table over all published days fail to open.
+    /// Only these days' files are read, with the features as doubles: a feature whose type
+    /// changed with its definition would make one table over all published days fail to
+    /// open (the schemas cannot be merged).
     async fn register_published(
         &self,
         ctx: &SessionContext,
@@ -261,6 +275,19 @@ impl DailyChecks {
         features: &[String],
     ) -> Result<Option<BTreeMap<NaiveDate, BTreeSet<String>>>, AuditError> {
         let published = tables::published_days(out, snapshots_dir(self.mode)).await?;
+        let files: Vec<(NaiveDate, &daymark_store::DataFile)> = published
+            .range(first..=prev)
+            .flat_map(|(d, fs)| fs.iter().map(move |f| (*d, f)))
+            .collect();
+        if files.is_empty() {
+            return Ok(None);
+        }
+        let footers = futures::future::join_all(
+            files
+                .iter()
+                .map(|(_, f)| daymark_store::read_footer(out, f)),
+        )
+        .await;
         let current: BTreeMap<&str, &str> = self
             .pipeline
             .features
@@ -268,66 +295,56 @@ impl DailyChecks {
             .map(|f| (f.name.as_str(), f.hash.as_str()))
             .collect();
         let mut comparable: BTreeMap<NaiveDate, BTreeSet<String>> = BTreeMap::new();
-        let mut branches = Vec::new();
-        for (day, files) in published.range(first..=prev) {
+        for ((day, file), footer) in files.iter().zip(footers) {
+            let footer = footer.map_err(|e| AuditError::Store {
+                path: file.path.to_string(),
+                reason: e.to_string(),
+            })?;
+            let hashes: Option<BTreeMap<String, String>> = footer
+                .schema
+                .metadata()
+                .get(FEATURE_HASHES_KEY)
+                .and_then(|t| serde_json::from_str(t).ok());
             let same = comparable
                 .entry(*day)
                 .or_insert_with(|| features.iter().cloned().collect());
-            for file in files {
-                let footer =
-                    daymark_store::read_footer(out, file)
-                        .await
-                        .map_err(|e| AuditError::Store {
-                            path: file.path.to_string(),
-                            reason: e.to_string(),
-                        })?;
-                let hashes: Option<BTreeMap<String, String>> = footer
+            same.retain(|f| {
+                let numeric = footer
                     .schema
-                    .metadata()
-                    .get(FEATURE_HASHES_KEY)
-                    .and_then(|t| serde_json::from_str(t).ok());
-                same.retain(|f| {
-                    let numeric = footer
-                        .schema
-                        .field_with_name(f)
-                        .is_ok_and(|c| tables::is_numeric(c.data_type()));
-                    let defined_alike = hashes.as_ref().is_none_or(|h| {
-                        h.get(f).map(String::as_str) == current.get(f.as_str()).copied()
-                    });
-                    numeric && defined_alike
+                    .field_with_name(f)
+                    .is_ok_and(|c| tables::is_numeric(c.data_type()));
+                let defined_alike = hashes.as_ref().is_none_or(|h| {
+                    h.get(f).map(String::as_str) == current.get(f.as_str()).copied()
                 });
-                let table = format!("{PUBLISHED}_{}", branches.len());
-                tables::register_file(ctx, out, &file.path, &table).await?;
-                branches.push((*day, table, footer.schema));
-            }
+                numeric && defined_alike
+            });
         }
-        if branches.is_empty() {
-            return Ok(None);
+        // One table over the files, with the schema given: each file's columns are cast to
+        // it as they are read, and only the columns a query names are.
+        let mut fields = vec![Field::new("snapshot_date", DataType::Date32, true)];
+        fields.extend(
+            features
+                .iter()
+                .map(|f| Field::new(f, DataType::Float64, true)),
+        );
+        let mut root = out.root_url.to_string();
+        if !root.ends_with('/') {
+            root.push('/');
         }
-        let selects: Vec<String> = branches
+        let urls = files
             .iter()
-            .map(|(day, table, schema)| {
-                let mut cols = vec![format!("{} AS dt", literal(&day.to_string()))];
-                for f in features {
-                    let numeric = schema
-                        .field_with_name(f)
-                        .is_ok_and(|c| tables::is_numeric(c.data_type()));
-                    cols.push(if numeric && comparable[day].contains(f) {
-                        format!("CAST({} AS DOUBLE) AS {}", ident(f), ident(f))
-                    } else {
-                        format!("CAST(NULL AS DOUBLE) AS {}", ident(f))
-                    });
-                }
-                format!("SELECT {} FROM {}", cols.join(", "), ident(table))
-            })
-            .collect();
-        let view = ctx
-            .sql(&selects.join(" UNION ALL "))
-            .await
-            .map_err(crate::engine("published days"))?
-            .into_view();
+            .map(|(_, f)| ListingTableUrl::parse(format!("{root}{}", f.path)))
+            .collect::<Result<Vec<_>, _>>()
+            .map_err(crate::engine("published days"))?;
+        let options =
+            ListingOptions::new(Arc::new(ParquetFormat::default())).with_file_extension(".parquet");
+        let config = ListingTableConfig::new_with_multi_paths(urls)
+            .with_listing_options(options)
+            .with_schema(Arc::new(Schema::new(fields)));
+        ctx.register_object_store(&out.root_url, out.store.clone());
         let _ = ctx.deregister_table(PUBLISHED);
-        ctx.register_table(PUBLISHED, view)
+        ListingTable::try_new(config)
+            .and_then(|t| ctx.register_table(PUBLISHED, Arc::new(t)))
             .map_err(crate::engine("published days"))?;
         Ok(Some(comparable))
     }
