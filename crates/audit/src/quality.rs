@@ -258,10 +258,10 @@ impl DailyChecks {
     }
 
     /// Registers as [`PUBLISHED`] the published days `first..=prev` (`snapshot_date`, then
-    /// each of `features` as a double; select days with [`dates_filter`]). Returns, per day, the features whose definition that day
-    /// was built under is today's (by the hashes in its footer; a file written before they
-    /// were kept counts as today's when it has the column as a number); `None` when no day
-    /// of the range is published.
+    /// each of `features` as a double; select days with [`dates_filter`]). Returns, per
+    /// day, the features whose definition that day was built under is today's (by the
+    /// hashes in its footer; a file written before they were kept counts as today's when
+    /// it has the column as a number); `None` when no day of the range is published.
     ///
     /// Only these days' files are read, with the features as doubles: a feature whose type
     /// changed with its definition would make one table over all published days fail to
