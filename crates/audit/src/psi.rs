@@ -3,7 +3,8 @@
 //!
 //! Binning, exactly:
 //! - The edges are the 10%, 20%, ..., 90% quantiles of the reference's non-null values,
-//!   computed with linear interpolation (DataFusion's `percentile_cont`), sorted, with
+//!   computed with linear interpolation (the values of DataFusion's `percentile_cont`,
+//!   found by one sort per feature: `quality::quantiles`), sorted, with
 //!   repeated edges kept once. So a feature with many ties (a count that is mostly 0) has
 //!   fewer than 10 value bins.
 //! - With edges e1 < ... < ek, value bin j (1..=k+1) holds values v with e(j-1) <= v < e(j)
@@ -72,23 +73,25 @@ pub fn psi(reference: &[u64], current: &[u64]) -> Option<f64> {
     Some(total)
 }
 
-/// SQL of one query returning, for each feature, the nine quantiles of [`QUANTILES`]
-/// (columns `q{feature index}_{quantile index}`) over `table` rows matching `filter`.
-pub fn quantiles_sql(table: &str, filter: &str, features: &[String]) -> String {
-    let mut cols = Vec::new();
-    for (i, f) in features.iter().enumerate() {
-        for (j, q) in QUANTILES.iter().enumerate() {
-            cols.push(format!(
-                "percentile_cont({q:?}) WITHIN GROUP (ORDER BY CAST({} AS DOUBLE)) AS q{i}_{j}",
-                daymark_engine::sql::ident(f)
-            ));
-        }
+/// The 1-based ranks, among `n` sorted values, that quantile `q` is interpolated from
+/// (one rank when it falls on a value): see [`quantile_from_ranks`].
+pub fn quantile_ranks(q: f64, n: u64) -> (u64, u64) {
+    let at = q * (n.saturating_sub(1)) as f64;
+    (at.floor() as u64 + 1, at.ceil() as u64 + 1)
+}
+
+/// Quantile `q` of `n` sorted values from the values at its [`quantile_ranks`], with
+/// DataFusion's `percentile_cont` arithmetic (the definition this module uses, checked bit
+/// for bit in the tests of `quality.rs`): at index i = q (n - 1), the value there when i is
+/// whole, else lower + (upper - lower) x w, with w = i - floor(i) truncated to six
+/// decimals.
+pub fn quantile_from_ranks(q: f64, n: u64, lower: f64, upper: f64) -> f64 {
+    let at = q * (n.saturating_sub(1)) as f64;
+    if n <= 1 || at.floor() == at.ceil() {
+        return lower;
     }
-    format!(
-        "SELECT {} FROM {} WHERE {filter}",
-        cols.join(", "),
-        daymark_engine::sql::ident(table)
-    )
+    let weight = ((at - at.floor()) * 1_000_000.0) as u64 as f64 / 1_000_000.0;
+    lower + (upper - lower) * weight
 }
 
 /// SQL of one query returning, per side (`__side` 0: reference rows of `ref_table`
