@@ -11,7 +11,8 @@
 //! They need no window frame (the frame is always "from the partition's first row to
 //! this one") and are causal, so DataFusion runs them in its bounded, streaming window
 //! operator and memory does not grow with the partition. A serialised plan names them;
-//! on a cluster every executor's session must know them: [`register`] adds them.
+//! on a cluster they travel with the `daymark-codec` crate's codec, or each process that
+//! decodes plans registers them ([`register`]).
 
 use datafusion::arrow::array::{Array, ArrayRef, AsArray};
 use datafusion::arrow::datatypes::{

@@ -4,10 +4,10 @@
 //! - [`check`]: check a pipeline against the sources' real schemas (columns, types, filters).
 //! - [`time`]: cutoffs and window bounds in the pipeline time zone.
 //! - [`session`]: the DataFusion session: memory limit, spilling, parallelism.
-//! - [`functions`]: daymark's running-sum/min/max window functions (an executor must
-//!   register them: no plan codec ships yet).
+//! - [`functions`]: daymark's running-sum/min/max window functions and first-copy marker
+//!   (plans naming them travel to a cluster with the `daymark-codec` crate's codec).
 //! - [`window_totals`]: windowed sums, active days and first/last days of each key's tile
-//!   rows, for backfills whose features are all of those kinds (registered likewise).
+//!   rows, for backfills whose features are all of those kinds (and the codec likewise).
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined

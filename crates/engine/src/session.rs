@@ -1,6 +1,7 @@
 //! The DataFusion session daymark runs its plans in: bounded memory that spills to disk.
 
 use datafusion::error::Result;
+use datafusion::execution::context::QueryPlanner;
 use datafusion::execution::disk_manager::DiskManagerBuilder;
 use datafusion::execution::memory_pool::{
     MemoryConsumer, MemoryLimit, MemoryPool, MemoryReservation,
@@ -24,6 +25,10 @@ pub struct EngineOptions {
     /// Tile rows read per day below which a range of a general pipeline is built day by
     /// day (default: [`crate::backfill::TILE_ROWS_PER_DAY_BY_DAY`]).
     pub tile_rows_per_day_by_day: Option<u64>,
+    /// Turns each planned query into an executable plan instead of DataFusion's own
+    /// planner (`None`: DataFusion's). The plan codec crate sets one that sends every plan
+    /// through protobuf first, as a cluster would.
+    pub query_planner: Option<Arc<dyn QueryPlanner + Send + Sync>>,
 }
 
 /// [`EngineOptions::backfill_rows_per_query`], kept in the session's configuration.
@@ -94,12 +99,15 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
             resident: ResidentCap::new(user_limit),
         }));
     }
-    let state = datafusion::execution::SessionStateBuilder::new()
+    let mut state = datafusion::execution::SessionStateBuilder::new()
         .with_config(config)
         .with_runtime_env(Arc::new(runtime.build()?))
         .with_default_features()
-        .with_physical_optimizer_rule(Arc::new(crate::window_totals::OnePhaseTotals))
-        .build();
+        .with_physical_optimizer_rule(Arc::new(crate::window_totals::OnePhaseTotals));
+    if let Some(planner) = &opts.query_planner {
+        state = state.with_query_planner(planner.clone());
+    }
+    let state = state.build();
     let ctx = SessionContext::new_with_state(state);
     crate::functions::register(&ctx);
     crate::window_totals::register(&ctx);
