@@ -160,8 +160,18 @@ pub mod exit {
     pub const LOCK_HELD: u8 = 12;
 }
 
+/// Set to `1`, every plan the command runs is sent through DataFusion's protobuf (logical,
+/// then physical) and decoded where only built-in functions are known before it runs, as on
+/// a cluster; the tally goes to standard error at the end. A check for developers.
+const PLANS_THROUGH_PROTOBUF: &str = "DAYMARK_PLANS_THROUGH_PROTOBUF";
+
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    let round_trip = (std::env::var(PLANS_THROUGH_PROTOBUF).as_deref() == Ok("1")).then(|| {
+        let planner = std::sync::Arc::new(daymark_codec::RoundTripPlanner::default());
+        daymark_engine::session::set_default_query_planner(planner.clone());
+        planner
+    });
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
@@ -203,6 +213,14 @@ fn main() -> ExitCode {
             }
         }
     });
+    if let Some(p) = round_trip {
+        eprintln!(
+            "{PLANS_THROUGH_PROTOBUF}: {} plan(s) sent through protobuf ({} bytes); daymark functions decoded: {:?}",
+            p.plans(),
+            p.bytes(),
+            p.decoded()
+        );
+    }
     match result {
         Ok(code) => ExitCode::from(code),
         Err(e) => {

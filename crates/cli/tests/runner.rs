@@ -1027,3 +1027,172 @@ fn a_run_back_fills_matured_labels_once() {
         .unwrap();
     assert_eq!(before, after);
 }
+
+/// Every plan of a daily run (tiles, a backfill, drift and population checks, labels) and
+/// of an audit (naive recomputation, label scan, leakage checks) runs the same when sent
+/// through DataFusion's protobuf and decoded where only built-in functions are known, as on
+/// a cluster (`DAYMARK_PLANS_THROUGH_PROTOBUF=1`, crate `daymark-codec`): same snapshots,
+/// same labels, same audit verdicts.
+#[test]
+fn every_plan_of_a_run_and_an_audit_survives_protobuf() {
+    let dir = tempfile::tempdir().unwrap();
+    let world = dir.path().join("world");
+    let generated = run(&[
+        "generate",
+        "--out",
+        world.to_str().unwrap(),
+        "--customers",
+        "100",
+        "--days",
+        "75",
+        "--start",
+        "2026-01-01",
+        "--seed",
+        "21",
+    ]);
+    assert_eq!(generated.code, Some(0), "{}", generated.stderr);
+    let demo = std::fs::read_to_string(
+        Path::new(
+            &std::env::var("CARGO_MANIFEST_DIR")
+                .unwrap_or_else(|_| env!("CARGO_MANIFEST_DIR").into()),
+        )
+        .join("../../pipelines/demo.yaml"),
+    )
+    .unwrap()
+    .replace("../demo-data/world/", &format!("{}/", world.display()));
+    let pipeline = dir.path().join("demo.yaml");
+    std::fs::write(&pipeline, demo).unwrap();
+    let p = pipeline.to_str().unwrap();
+
+    let mut outputs = Vec::new();
+    for shipped in [false, true] {
+        let out = dir
+            .path()
+            .join(if shipped { "shipped" } else { "in-place" });
+        let o = out.to_str().unwrap();
+        let with_env = |args: &[&str]| {
+            let mut c = daymark();
+            c.args(args);
+            if shipped {
+                c.env("DAYMARK_PLANS_THROUGH_PROTOBUF", "1");
+            }
+            let r = c.output().unwrap();
+            (
+                r.status.code(),
+                String::from_utf8_lossy(&r.stdout).into_owned(),
+                String::from_utf8_lossy(&r.stderr).into_owned(),
+            )
+        };
+        let args = [
+            "run",
+            p,
+            "--out",
+            o,
+            "--from",
+            "2026-01-20",
+            "--until",
+            "2026-01-26",
+        ];
+        let (code, stdout, stderr) = with_env(&args);
+        assert_eq!(code, Some(0), "{stdout}\n{stderr}");
+        let audit = [
+            "audit",
+            p,
+            "--outputs",
+            o,
+            "--json",
+            "--sample",
+            "30",
+            "--sample-days",
+            "2",
+        ];
+        let (code, audit_out, audit_err) = with_env(&audit);
+        assert!(code.is_some(), "{audit_err}");
+        if shipped {
+            // The tally names daymark's functions: they arrived by the codec.
+            for text in [&stderr, &audit_err] {
+                let tally = text
+                    .lines()
+                    .find(|l| l.starts_with("DAYMARK_PLANS_THROUGH_PROTOBUF: "))
+                    .unwrap_or_else(|| panic!("no tally in {text}"));
+                let plans: u64 = tally
+                    .trim_start_matches("DAYMARK_PLANS_THROUGH_PROTOBUF: ")
+                    .split(' ')
+                    .next()
+                    .unwrap()
+                    .parse()
+                    .unwrap();
+                assert!(plans >= 5, "{tally}");
+            }
+            assert!(stderr.contains("daymark_first_copy"), "{stderr}");
+        } else {
+            assert!(!stderr.contains("DAYMARK_PLANS_THROUGH_PROTOBUF"));
+        }
+        outputs.push((out, code, audit_out));
+    }
+    let (a, b) = (&outputs[0], &outputs[1]);
+    let snapshots = snapshot_rows(&a.0.join("snapshots"));
+    assert_eq!(snapshots.len(), 7);
+    assert_same(
+        &snapshots,
+        &snapshot_rows(&b.0.join("snapshots")),
+        "snapshots",
+    );
+    let labels = snapshot_rows(&a.0.join("labels"));
+    assert!(!labels.is_empty());
+    assert_same(&labels, &snapshot_rows(&b.0.join("labels")), "labels");
+    assert_eq!(a.1, b.1, "audit exit codes");
+    let verdicts = |text: &str| {
+        let mut v: serde_json::Value = serde_json::from_str(text).unwrap();
+        strip_volatile(&mut v);
+        let mut flat = BTreeMap::new();
+        flatten("", &v, &mut flat);
+        flat
+    };
+    let (x, y) = (verdicts(&a.2), verdicts(&b.2));
+    let differ: Vec<String> = x
+        .keys()
+        .chain(y.keys())
+        .collect::<BTreeSet<_>>()
+        .into_iter()
+        .filter(|k| match (x.get(*k), y.get(*k)) {
+            (Some(Ok(p)), Some(Ok(q))) => (p - q).abs() > 1e-9 * p.abs().max(q.abs()).max(1e-9),
+            (p, q) => p != q,
+        })
+        .map(|k| format!("{k}: {:?} vs {:?}", x.get(k), y.get(k)))
+        .collect();
+    assert!(differ.is_empty(), "audit: {differ:#?}");
+    assert!(x.len() > 50, "{x:?}");
+}
+
+/// `v` as (path, value) pairs: numbers as numbers (compared to 1e-9 relative: sums of
+/// doubles are combined in parallel), anything else as text.
+fn flatten(path: &str, v: &serde_json::Value, out: &mut BTreeMap<String, Result<f64, String>>) {
+    match v {
+        serde_json::Value::Object(m) => m
+            .iter()
+            .for_each(|(k, x)| flatten(&format!("{path}/{k}"), x, out)),
+        serde_json::Value::Array(a) => a
+            .iter()
+            .enumerate()
+            .for_each(|(i, x)| flatten(&format!("{path}/{i}"), x, out)),
+        serde_json::Value::Number(n) => {
+            out.insert(path.into(), n.as_f64().ok_or_else(|| n.to_string()));
+        }
+        other => {
+            out.insert(path.into(), Err(other.to_string()));
+        }
+    }
+}
+
+/// Removes what differs between two runs of the same audit: timings and output paths.
+fn strip_volatile(v: &mut serde_json::Value) {
+    match v {
+        serde_json::Value::Object(m) => {
+            m.retain(|k, _| !k.contains("seconds") && !k.contains("elapsed") && k != "outputs");
+            m.values_mut().for_each(strip_volatile);
+        }
+        serde_json::Value::Array(a) => a.iter_mut().for_each(strip_volatile),
+        _ => {}
+    }
+}

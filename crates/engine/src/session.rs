@@ -31,6 +31,19 @@ pub struct EngineOptions {
     pub query_planner: Option<Arc<dyn QueryPlanner + Send + Sync>>,
 }
 
+/// The query planner of every session whose options name none (see
+/// [`set_default_query_planner`]).
+static DEFAULT_QUERY_PLANNER: std::sync::OnceLock<Arc<dyn QueryPlanner + Send + Sync>> =
+    std::sync::OnceLock::new();
+
+/// Sets the query planner of every session made after this call whose
+/// [`EngineOptions::query_planner`] is `None`, for the whole process: the command line sets
+/// one that sends plans through protobuf when asked to check that they travel. Returns
+/// false, changing nothing, when one was set already.
+pub fn set_default_query_planner(planner: Arc<dyn QueryPlanner + Send + Sync>) -> bool {
+    DEFAULT_QUERY_PLANNER.set(planner).is_ok()
+}
+
 /// [`EngineOptions::backfill_rows_per_query`], kept in the session's configuration.
 #[derive(Debug, Clone, Copy)]
 pub struct BackfillRowsPerQuery(pub u64);
@@ -104,7 +117,7 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
         .with_runtime_env(Arc::new(runtime.build()?))
         .with_default_features()
         .with_physical_optimizer_rule(Arc::new(crate::window_totals::OnePhaseTotals));
-    if let Some(planner) = &opts.query_planner {
+    if let Some(planner) = opts.query_planner.as_ref().or(DEFAULT_QUERY_PLANNER.get()) {
         state = state.with_query_planner(planner.clone());
     }
     let state = state.build();

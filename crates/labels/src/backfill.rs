@@ -32,6 +32,7 @@ use daymark_engine::sql::{ident, literal, ts_literal, KnowledgeOverride};
 use daymark_engine::time;
 use daymark_spec::{Knowledge, LabelSpec, Pipeline};
 use daymark_store::object_store::path::Path as StorePath;
+use daymark_store::object_store::ObjectStoreExt;
 use daymark_store::Location;
 use std::collections::BTreeMap;
 
@@ -281,18 +282,67 @@ pub async fn backfill(
         .filter(|d| !d.3)
         .map(|d| last_partition(&d.2))
         .max();
+    // They go to a Parquet file in the output store's staging folder, read by each day's
+    // query and removed at the end: a table held in memory (`DataFrame::cache`) would not
+    // travel with a plan to a cluster (checked by `DAYMARK_PLANS_THROUGH_PROTOBUF`).
+    let mut events_file = None;
     if let Some(last) = last {
-        let events = ctx
-            .sql(&label_events_sql(pipeline, label, last))
-            .await
-            .map_err(LabelError::engine(format!("reading {}", label.source)))?
-            .cache()
-            .await
-            .map_err(LabelError::engine(format!("reading {}", label.source)))?;
+        let stamp = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.as_nanos())
+            .unwrap_or_default();
+        let path = child(
+            &out.prefix,
+            &[
+                "_staging",
+                &format!("label-events-{}-{stamp}.parquet", std::process::id()),
+            ],
+        );
+        write_query(
+            ctx,
+            &label_events_sql(pipeline, label, last),
+            out,
+            &path,
+            last,
+            None,
+        )
+        .await?;
+        events_file = Some(path.clone());
         let _ = ctx.deregister_table("__label_events");
-        ctx.register_table("__label_events", events.into_view())
-            .map_err(LabelError::engine(format!("reading {}", label.source)))?;
+        ctx.register_parquet(
+            "__label_events",
+            object_url(out, &path),
+            ParquetReadOptions::default(),
+        )
+        .await
+        .map_err(LabelError::engine(format!("reading {}", label.source)))?;
     }
+    let labeled = label_days(ctx, pipeline, label, out, mode, due, &mut result).await;
+    let _ = ctx.deregister_table("__label_events");
+    if let Some(path) = events_file {
+        // A leftover is removed with the rest of `_staging/` by the next run.
+        let _ = out.store.delete(&path).await;
+    }
+    labeled?;
+    Ok(result)
+}
+
+/// Writes the label of each of `due` that is not up to date and records every day in
+/// `result` (the label events are registered as `__label_events`).
+async fn label_days(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    label: &LabelSpec,
+    out: &Location,
+    mode: KnowledgeOverride,
+    due: Vec<(
+        NaiveDate,
+        &daymark_store::object_store::ObjectMeta,
+        LabelTimes,
+        bool,
+    )>,
+    result: &mut Backfill,
+) -> Result<(), LabelError> {
     for (day, snap_meta, t, up_to_date) in due {
         let day = &day;
         let path = label_path(out, mode, *day);
@@ -319,7 +369,7 @@ pub async fn backfill(
             matured_at: t.matured_at,
         });
     }
-    Ok(result)
+    Ok(())
 }
 
 /// Rows, positives and censored rows of a published label file.
