@@ -179,21 +179,9 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     }
     // One writer per output: the lock that `run` and `watch` take (a build started by hand
     // beside a scheduled run would otherwise race it for the same files).
-    let me = daymark_runner::ledger::RunIdentity::current();
-    let guard = match daymark_runner::lock::acquire(&out, &me, "build", BUILD_LOCK_LEASE).await? {
-        daymark_runner::lock::Acquire::Acquired(guard, note) => {
-            if let Some(n) = note {
-                eprintln!("{n}");
-            }
-            guard
-        }
-        daymark_runner::lock::Acquire::Held(info) => {
-            eprintln!(
-                "another run holds the output lock: {}; nothing built",
-                info.describe()
-            );
-            return Ok(exit::LOCK_HELD);
-        }
+    let Some(guard) = take_output_lock(&out, "build", BUILD_LOCK_LEASE, "nothing built").await?
+    else {
+        return Ok(exit::LOCK_HELD);
     };
     let result = build_locked(
         &args,
@@ -212,6 +200,34 @@ pub async fn build(args: BuildArgs) -> Result<u8> {
     let code = result?;
     released?;
     Ok(code)
+}
+
+/// Takes the output lock that `run` and `watch` take, for `command` with a lease of
+/// `lease` (renewed while held). While another process holds it, says so on standard error,
+/// ending with `refused` (what was not done), and returns `None`: exit with
+/// [`exit::LOCK_HELD`].
+pub(crate) async fn take_output_lock(
+    out: &daymark_store::Location,
+    command: &str,
+    lease: std::time::Duration,
+    refused: &str,
+) -> Result<Option<Box<daymark_runner::lock::LockGuard>>> {
+    let me = daymark_runner::ledger::RunIdentity::current();
+    match daymark_runner::lock::acquire(out, &me, command, lease).await? {
+        daymark_runner::lock::Acquire::Acquired(guard, note) => {
+            if let Some(n) = note {
+                eprintln!("{n}");
+            }
+            Ok(Some(guard))
+        }
+        daymark_runner::lock::Acquire::Held(info) => {
+            eprintln!(
+                "another run holds the output lock: {}; {refused}",
+                info.describe()
+            );
+            Ok(None)
+        }
+    }
 }
 
 /// Lease of the output lock while `daymark build` works (renewed every third of it).

@@ -1,6 +1,8 @@
 //! `daymark labels`: back-fill the labels of built snapshots that have matured.
 
-use crate::commands::{inspect, invalid, load, parse_day, parse_mode, print_problems};
+use crate::commands::{
+    inspect, invalid, load, parse_day, parse_mode, print_problems, take_output_lock,
+};
 use crate::exit;
 use anyhow::Result;
 use chrono::Duration;
@@ -9,6 +11,9 @@ use daymark_spec::Pipeline;
 use daymark_store::Location;
 use serde_json::json;
 use std::path::PathBuf;
+
+/// Lease of the output lock while `daymark labels` works (renewed while held).
+const LABELS_LOCK_LEASE: std::time::Duration = std::time::Duration::from_secs(120);
 
 /// Arguments of `daymark labels`.
 #[derive(clap::Args)]
@@ -71,8 +76,18 @@ pub async fn labels(args: LabelsArgs) -> Result<u8> {
     let ctx = daymark_engine::session::session(&Default::default())?;
     daymark_engine::register_sources(&ctx, &pipeline, &reports).await?;
     let watermarks = daymark_labels::source_watermarks(&pipeline, &reports);
+    // The lock `run` takes: labels and their staging files would otherwise race a run
+    // that is writing them, or one cleaning `_staging/` as it starts.
+    let Some(guard) =
+        take_output_lock(&out, "labels", LABELS_LOCK_LEASE, "nothing labelled").await?
+    else {
+        return Ok(exit::LOCK_HELD);
+    };
     let t0 = std::time::Instant::now();
-    let result = daymark_labels::backfill(&ctx, &pipeline, &watermarks, &out, mode, until).await?;
+    let result = daymark_labels::backfill(&ctx, &pipeline, &watermarks, &out, mode, until).await;
+    let released = guard.release().await;
+    let result = result?;
+    released?;
     let secs = t0.elapsed().as_secs_f64();
     let written = result.labeled.iter().filter(|l| l.written).count();
     let matures_on = |day| day + Duration::days(label.horizon.0 as i64 + label.grace.0 as i64);

@@ -1,7 +1,7 @@
 //! `daymark tidy`: lists the tile folders the pipeline no longer reads and, with
 //! `--apply`, removes them under the output lock.
 
-use crate::commands::human_bytes;
+use crate::commands::{human_bytes, take_output_lock};
 use crate::exit;
 use crate::run_cmd::cli_error;
 use anyhow::Result;
@@ -34,24 +34,9 @@ pub async fn tidy(args: TidyArgs) -> Result<u8> {
     // Removing needs the lock a build takes: a build running now may be filling a folder
     // that a pipeline file edited since would call unused.
     let guard = if args.apply {
-        let me = daymark_runner::ledger::RunIdentity::current();
-        match daymark_runner::lock::acquire(&out, &me, "tidy", TIDY_LOCK_LEASE)
-            .await
-            .map_err(cli_error)?
-        {
-            daymark_runner::lock::Acquire::Acquired(guard, note) => {
-                if let Some(n) = note {
-                    eprintln!("{n}");
-                }
-                Some(guard)
-            }
-            daymark_runner::lock::Acquire::Held(info) => {
-                eprintln!(
-                    "another run holds the output lock: {}; nothing removed",
-                    info.describe()
-                );
-                return Ok(exit::LOCK_HELD);
-            }
+        match take_output_lock(&out, "tidy", TIDY_LOCK_LEASE, "nothing removed").await? {
+            Some(guard) => Some(guard),
+            None => return Ok(exit::LOCK_HELD),
         }
     } else {
         None

@@ -335,6 +335,16 @@ fn generate_then_check_and_explain_the_demo_pipeline() {
     let held = tidy(&["--apply"]);
     assert_eq!(held.status.code(), Some(12));
     assert_eq!(tile_folders("plays"), plays_before);
+    // `labels` takes the same lock: nothing labelled while another run holds it.
+    let held = daymark()
+        .args(["labels", pipeline.to_str().unwrap()])
+        .args(["--out", out_dir.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&held.stderr);
+    assert_eq!(held.status.code(), Some(12), "{stderr}");
+    assert!(stderr.ends_with("; nothing labelled\n"), "{stderr}");
+    assert!(!out_dir.join("labels").exists());
     std::fs::remove_file(&lock).unwrap();
     let applied = tidy(&["--apply"]);
     assert_eq!(
