@@ -364,7 +364,7 @@ async fn build_locked(
                 let secs = t_roll.elapsed().as_secs_f64();
                 log.event(
                     "rollups",
-                    || format!("rolled up {built} week(s) and month(s) of tiles for the daily builds ({secs:.1} s)"),
+                    || format!("rolled up {built} week(s), month(s) and histories of tiles for the daily builds ({secs:.1} s)"),
                     json!({"rollups_built": built, "seconds": secs}),
                 );
             }

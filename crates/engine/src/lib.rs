@@ -12,7 +12,8 @@
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined
 //!   from them.
-//! - [`rollups`]: tiles of whole weeks and months, and the pieces a daily snapshot reads.
+//! - [`rollups`]: tiles of whole weeks and months, the history up to a month's end, and the
+//!   pieces a daily snapshot reads.
 //! - [`tidy`]: the tile folders a pipeline no longer reads, listed and removed.
 //! - [`provenance`]: per source, the latest event and arrival time a snapshot read.
 //! - [`sql`]: one day's snapshot as one plain SQL query (the naive path, shown by `explain`).

@@ -19,6 +19,16 @@
 //! covers change (its days and one more each side: rows are filed by event day in UTC).
 //! Spans ending after D-2 are not rolled up: the partition after their last day still
 //! fills.
+//!
+//! Aggregates without a window start (days since, `all` windows, the population's state)
+//! would read every month of the history, a cost that grows month after month. They read
+//! instead one **history** roll-up: every tile row up to the end of the latest month that
+//! ends by D-2 and before every other window start of the source (so no other piece
+//! overlaps it), then the pieces after it. The history of month M is combined from that of
+//! M-1 and the roll-up of M when the former is current (once a month for a daily run),
+//! else from the months. Its `__lo` is the history's first day, before every window start,
+//! so bounded features leave it out. Distinct counts over all history keep no history
+//! (their source reads months as before).
 
 use crate::build::{child, BuildError};
 use crate::sources::SourceReport;
@@ -44,6 +54,10 @@ pub enum Level {
     Week,
     /// A calendar month.
     Month,
+    /// Every event day up to the end of a calendar month, from the start of the history
+    /// (see [`history_span`]): what features without a window start read, so that a daily
+    /// build combines one row per key for the months behind it, however many there are.
+    History,
 }
 
 impl Level {
@@ -51,17 +65,19 @@ impl Level {
         match self {
             Level::Week => "w",
             Level::Month => "m",
+            Level::History => "h",
         }
     }
     fn trunc(self) -> &'static str {
         match self {
             Level::Week => "week",
-            Level::Month => "month",
+            Level::Month | Level::History => "month",
         }
     }
 }
 
-/// A stored span of days: a week or a month.
+/// A stored span of days: a week, a month, or the history up to the end of a month (whose
+/// `first` is then that month's first day).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
 pub struct Span {
     /// Week or month.
@@ -75,7 +91,7 @@ impl Span {
     pub fn last(&self) -> NaiveDate {
         match self.level {
             Level::Week => self.first + Duration::days(6),
-            Level::Month => {
+            Level::Month | Level::History => {
                 let (y, m) = if self.first.month() == 12 {
                     (self.first.year() + 1, 1)
                 } else {
@@ -408,19 +424,25 @@ fn span_inputs(report: &SourceReport, span: Span) -> String {
     let files: Vec<serde_json::Value> = report
         .listing
         .days
-        .range(span.first - Duration::days(1)..=span.last() + Duration::days(1))
+        .range(span_range(span))
         .map(|(d, files)| json!([d.to_string(), crate::tiles::fingerprint(files)]))
         .collect();
     hash_value(&json!([ROLLUP_FORMAT, files]))
 }
 
+/// The partitions holding a span's rows: its days and one more each side (rows are filed
+/// by event day in UTC); for the history, every partition up to the day after its end.
+fn span_range(span: Span) -> std::ops::RangeInclusive<NaiveDate> {
+    let first = match span.level {
+        Level::History => NaiveDate::MIN,
+        _ => span.first - Duration::days(1),
+    };
+    first..=span.last() + Duration::days(1)
+}
+
 /// The partitions a span's roll-up reads.
 fn span_partitions(report: &SourceReport, span: Span) -> impl Iterator<Item = NaiveDate> + '_ {
-    report
-        .listing
-        .days
-        .range(span.first - Duration::days(1)..=span.last() + Duration::days(1))
-        .map(|(d, _)| *d)
+    report.listing.days.range(span_range(span)).map(|(d, _)| *d)
 }
 
 /// Reads the stored markers of `spans`; returns those still current.
@@ -594,24 +616,11 @@ async fn build(
     let dir = dir(layout, pipeline, out, level);
     let mut built = BTreeMap::new();
     for span in spans {
-        let max_arrival = latest.get(&span.first).copied();
-        let marker = json!({
-            "inputs": span_inputs(report, *span),
-            "max_arrival": max_arrival.map(|d| d.to_string()),
-        });
-        let path = marker_path(&dir, *span);
-        out.store
-            .put(
-                &path,
-                PutPayload::from(serde_json::to_vec(&marker).unwrap_or_default()),
-            )
-            .await
-            .map_err(|e| BuildError::Write {
-                day: span.first,
-                path: path.to_string(),
-                reason: e.to_string(),
-            })?;
-        built.insert(*span, Stored { max_arrival });
+        let stored = Stored {
+            max_arrival: latest.get(&span.first).copied(),
+        };
+        write_marker(out, &dir, report, *span, stored).await?;
+        built.insert(*span, stored);
     }
     Ok(built)
 }
@@ -633,6 +642,8 @@ async fn register_tables(
     for (i, _, _) in &layout.distinct {
         tables.push(match level {
             None => (layout.distinct_dir(out, *i), layout.distinct_table(*i)),
+            // The history keeps no distinct values (see `unbounded_distinct`).
+            Some(Level::History) => continue,
             Some(l) => (
                 distinct_dir(layout, out, *i, l),
                 distinct_table(layout, *i, l),
@@ -675,25 +686,52 @@ pub async fn plan_day(
             continue;
         };
         let report = &reports[name];
-        let mut stats = TileStats::default();
         let Some(first_partition) = report.listing.days.keys().next().copied() else {
             plan.sources.insert(name.clone(), Pieces::default());
-            all_stats.insert(name.clone(), stats);
+            all_stats.insert(name.clone(), TileStats::default());
             continue;
+        };
+        let mut cur = Current {
+            ctx,
+            pipeline,
+            report,
+            layout,
+            out,
+            day,
+            stats: TileStats::default(),
+            checked: BTreeMap::new(),
+            registered: false,
+        };
+        // An as-known snapshot may use a roll-up only if all its rows had arrived.
+        let usable_by_day = |st: &Stored| {
+            read.knowledge == Knowledge::EventTime || st.max_arrival.is_none_or(|a| a <= last)
         };
         // Rows of a partition have event days from the day before it to the day after.
         let floor = first_partition - Duration::days(1);
         let (starts, unbounded) = window_starts(pipeline, name, day);
-        let lo = match starts.first() {
+        let mut lo = match starts.first() {
             Some(s) if !unbounded => (*s).max(floor),
             _ => floor,
         };
+        // Features without a window start read the history up to a month's end in one
+        // piece, then the pieces after it.
+        // An as-known snapshot cannot use a history holding rows that arrived after its
+        // cutoff (in the first days of a month, the late rows of the month before): it
+        // tries the month before, then reads months.
+        let mut history = None;
+        let mut candidate = history_span(&starts, floor, stable)
+            .filter(|_| unbounded && !unbounded_distinct(pipeline, name));
+        for _ in 0..2 {
+            let Some(span) = candidate else { break };
+            if usable_by_day(&cur.history(span, floor).await?) {
+                history = Some(span);
+                lo = span.last() + Duration::days(1);
+                break;
+            }
+            candidate = earlier_history(span, floor);
+        }
         // Spans known: None = stored but not usable by this snapshot.
         let mut known: BTreeMap<Span, Option<Stored>> = BTreeMap::new();
-        // Partitions whose tiles are known current, with their ignored rows.
-        let mut checked: BTreeMap<NaiveDate, Ignored> = BTreeMap::new();
-        // Whether the day tiles are registered since the last ones were written.
-        let mut registered = false;
         let pieces = loop {
             let usable = |s: Span| match known.get(&s) {
                 None => true,
@@ -723,50 +761,23 @@ pub async fn plan_day(
                 if spans.is_empty() {
                     continue;
                 }
-                let folder = dir(layout, pipeline, out, level);
-                let current = stored(out, &folder, report, &spans).await;
-                stats.rollups_reused += current.len() as u64;
-                let stale: Vec<Span> = spans
-                    .iter()
-                    .filter(|s| !current.contains_key(s))
-                    .copied()
-                    .collect();
-                let mut found = current;
-                if !stale.is_empty() {
-                    let parts: BTreeSet<NaiveDate> = stale
-                        .iter()
-                        .flat_map(|s| span_partitions(report, *s))
-                        .filter(|d| !checked.contains_key(d))
-                        .collect();
-                    let (s, counts) =
-                        crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts)
-                            .await?;
-                    stats.add(&s);
-                    checked.extend(counts);
-                    if s.partitions_built > 0 || !registered {
-                        register_tables(ctx, pipeline, out, layout, None, day).await?;
-                        registered = true;
-                    }
-                    let floats = float_sums(ctx, layout).await;
-                    for spans in stale.chunks(spans_per_query(ctx, stale.len())) {
-                        let built =
-                            build(ctx, pipeline, report, layout, out, level, spans, &floats)
-                                .await?;
-                        stats.rollups_built += built.len() as u64;
-                        found.extend(built);
-                        crate::session::release_free_memory();
-                    }
-                }
+                let found = cur.spans(level, &spans).await?;
                 for span in spans {
-                    // An as-known snapshot may use a span only if all its rows had arrived.
-                    let ok = found.get(&span).filter(|st| {
-                        read.knowledge == Knowledge::EventTime
-                            || st.max_arrival.is_none_or(|a| a <= last)
-                    });
-                    known.insert(span, ok.copied());
+                    known.insert(
+                        span,
+                        found.get(&span).filter(|st| usable_by_day(st)).copied(),
+                    );
                 }
             }
         };
+        let mut pieces = pieces;
+        pieces.spans.splice(0..0, history);
+        let Current {
+            mut stats,
+            mut checked,
+            mut registered,
+            ..
+        } = cur;
         // Tiles of the partitions the day pieces read, then the markers of every other
         // partition the day depends on: rows ignored (null key) or suspicious (clock skew)
         // are reported whatever their event day (a row stamped years ahead sits in no
@@ -807,9 +818,8 @@ pub async fn plan_day(
         if !registered {
             register_tables(ctx, pipeline, out, layout, None, day).await?;
         }
-        let mut pieces = pieces;
         pieces.float_sums = float_sums(ctx, layout).await;
-        for level in [Level::Month, Level::Week] {
+        for level in LEVELS {
             if pieces.spans.iter().any(|s| s.level == level) {
                 register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
             }
@@ -825,6 +835,231 @@ pub async fn plan_day(
         all_stats.insert(name.clone(), stats);
     }
     Ok((all_stats, plan))
+}
+
+/// The stored levels, in the order pieces read them.
+const LEVELS: [Level; 3] = [Level::History, Level::Month, Level::Week];
+
+/// Whether a feature counts the distinct values of `source` without a window start (the
+/// history roll-up keeps no values: such a source reads its months).
+fn unbounded_distinct(pipeline: &Pipeline, source: &str) -> bool {
+    pipeline.features.iter().any(|f| {
+        matches!(&f.def, FeatureDef::Aggregate { source: s, agg: Aggregation::CountDistinct, window, .. }
+            if s == source && window.days().is_none())
+    })
+}
+
+/// The history roll-up that features without a window start read, for a snapshot whose
+/// other windows of the same source start on `starts`: the one ending with the latest month
+/// that ends on or before `stable` and before every window start (so that no piece of a
+/// window overlaps it), if that month ends on or after `floor` (the history's first day).
+fn history_span(starts: &BTreeSet<NaiveDate>, floor: NaiveDate, stable: NaiveDate) -> Option<Span> {
+    let limit = match starts.first() {
+        Some(s) => stable.min(*s - Duration::days(1)),
+        None => stable,
+    };
+    let mut month = month_start(limit);
+    if month.last() > limit {
+        month = month_start(month.first - Duration::days(1));
+    }
+    (month.last() >= floor).then_some(Span {
+        level: Level::History,
+        first: month.first,
+    })
+}
+
+/// The history ending with the month before that of `span`, if that month ends on or
+/// after `floor`.
+fn earlier_history(span: Span, floor: NaiveDate) -> Option<Span> {
+    let month = month_start(span.first - Duration::days(1));
+    (month.last() >= floor).then_some(Span {
+        level: Level::History,
+        first: month.first,
+    })
+}
+
+/// The piece columns of [`columns`] combined once more, over rows that are themselves
+/// pieces (months, or an earlier history): active days add up (the pieces' days are
+/// disjoint), days since first/last take the earliest/latest of theirs; every other column
+/// combines as it does over tile rows.
+fn pieces_combined(cols: &[(String, String)]) -> Vec<String> {
+    cols.iter()
+        .map(|(n, a)| {
+            if n.starts_with("__ad") {
+                format!("SUM({n}) AS {n}")
+            } else if n.starts_with("__tf") {
+                format!("MIN({n}) AS {n}")
+            } else if n.starts_with("__tl") {
+                format!("MAX({n}) AS {n}")
+            } else {
+                format!("{a} AS {n}")
+            }
+        })
+        .collect()
+}
+
+/// What [`plan_day`] keeps while it makes one source's roll-ups current for a snapshot.
+struct Current<'a> {
+    ctx: &'a SessionContext,
+    pipeline: &'a Pipeline,
+    report: &'a SourceReport,
+    layout: &'a TileLayout,
+    out: &'a Location,
+    day: NaiveDate,
+    stats: TileStats,
+    /// Partitions whose tiles are known current, with their ignored rows.
+    checked: BTreeMap<NaiveDate, Ignored>,
+    /// Whether the day tiles are registered since the last ones were written.
+    registered: bool,
+}
+
+impl Current<'_> {
+    /// The roll-ups of `spans` (all of `level`, a week or a month), those missing or stale
+    /// built (with the tiles they read).
+    async fn spans(
+        &mut self,
+        level: Level,
+        spans: &[Span],
+    ) -> Result<BTreeMap<Span, Stored>, BuildError> {
+        let (ctx, pipeline, report, layout, out) =
+            (self.ctx, self.pipeline, self.report, self.layout, self.out);
+        let folder = dir(layout, pipeline, out, level);
+        let mut found = stored(out, &folder, report, spans).await;
+        self.stats.rollups_reused += found.len() as u64;
+        let stale: Vec<Span> = spans
+            .iter()
+            .filter(|s| !found.contains_key(s))
+            .copied()
+            .collect();
+        if stale.is_empty() {
+            return Ok(found);
+        }
+        let parts: BTreeSet<NaiveDate> = stale
+            .iter()
+            .flat_map(|s| span_partitions(report, *s))
+            .filter(|d| !self.checked.contains_key(d))
+            .collect();
+        let (s, counts) =
+            crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
+        self.stats.add(&s);
+        self.checked.extend(counts);
+        if s.partitions_built > 0 || !self.registered {
+            register_tables(ctx, pipeline, out, layout, None, self.day).await?;
+            self.registered = true;
+        }
+        let floats = float_sums(ctx, layout).await;
+        for spans in stale.chunks(spans_per_query(ctx, stale.len())) {
+            let built = build(ctx, pipeline, report, layout, out, level, spans, &floats).await?;
+            self.stats.rollups_built += built.len() as u64;
+            found.extend(built);
+            crate::session::release_free_memory();
+        }
+        Ok(found)
+    }
+
+    /// The history roll-up `span` (history from `floor` on), built if missing or stale:
+    /// from the latest earlier history still current and the months after it, or from the
+    /// months alone; the months are built if they are missing. A daily build therefore adds
+    /// one month to the history once a month.
+    async fn history(&mut self, span: Span, floor: NaiveDate) -> Result<Stored, BuildError> {
+        let (ctx, pipeline, report, layout, out) =
+            (self.ctx, self.pipeline, self.report, self.layout, self.out);
+        let folder = dir(layout, pipeline, out, Level::History);
+        if let Some(found) = stored(out, &folder, report, &[span]).await.remove(&span) {
+            self.stats.rollups_reused += 1;
+            return Ok(found);
+        }
+        let first_month = month_start(floor);
+        let mut base = None;
+        let mut m = month_start(span.first - Duration::days(1));
+        while m.first >= first_month.first {
+            let earlier = Span {
+                level: Level::History,
+                first: m.first,
+            };
+            if let Some(found) = stored(out, &folder, report, &[earlier])
+                .await
+                .remove(&earlier)
+            {
+                base = Some((earlier, found));
+                break;
+            }
+            m = month_start(m.first - Duration::days(1));
+        }
+        let mut months = Vec::new();
+        let mut m = match base {
+            Some((b, _)) => month_start(b.last() + Duration::days(1)),
+            None => first_month,
+        };
+        while m.first <= span.first {
+            months.push(m);
+            m = month_start(m.last() + Duration::days(1));
+        }
+        let found = self.spans(Level::Month, &months).await?;
+        register_tables(ctx, pipeline, out, layout, Some(Level::Month), self.day).await?;
+        let cols = columns(pipeline, layout, &float_sums(ctx, layout).await);
+        let names: Vec<&str> = cols.iter().map(|(n, _)| n.as_str()).collect();
+        let mut inputs = vec![format!(
+            "SELECT __key, {} FROM {} WHERE dt IN ({})",
+            names.join(", "),
+            ident(&table(layout, Level::Month)),
+            in_list(months.iter().map(|m| m.first))
+        )];
+        if let Some((b, _)) = base {
+            register_tables(ctx, pipeline, out, layout, Some(Level::History), self.day).await?;
+            inputs.push(format!(
+                "SELECT __key, {} FROM {} WHERE dt = {}",
+                names.join(", "),
+                ident(&table(layout, Level::History)),
+                literal(&b.first.to_string())
+            ));
+        }
+        let sql = format!(
+            "SELECT {} AS __part, __key, {} AS __lo, {} FROM ({}) GROUP BY __key",
+            date(span.first),
+            date(floor),
+            pieces_combined(&cols).join(", "),
+            inputs.join(" UNION ALL ")
+        );
+        crate::tiles::write_split(ctx, &sql, out, &folder, &[span.first], &[]).await?;
+        let max_arrival = months
+            .iter()
+            .filter_map(|m| found.get(m))
+            .chain(base.as_ref().map(|(_, b)| b))
+            .filter_map(|s| s.max_arrival)
+            .max();
+        let stored = Stored { max_arrival };
+        write_marker(out, &folder, report, span, stored).await?;
+        self.stats.rollups_built += 1;
+        Ok(stored)
+    }
+}
+
+/// Writes the marker of roll-up `span` in `dir`: its inputs and latest arrival day.
+async fn write_marker(
+    out: &Location,
+    dir: &StorePath,
+    report: &SourceReport,
+    span: Span,
+    stored: Stored,
+) -> Result<(), BuildError> {
+    let marker = json!({
+        "inputs": span_inputs(report, span),
+        "max_arrival": stored.max_arrival.map(|d| d.to_string()),
+    });
+    let path = marker_path(dir, span);
+    out.store
+        .put(
+            &path,
+            PutPayload::from(serde_json::to_vec(&marker).unwrap_or_default()),
+        )
+        .await
+        .map_err(|e| BuildError::Write {
+            day: span.first,
+            path: path.to_string(),
+            reason: e.to_string(),
+        })?;
+    Ok(())
 }
 
 /// The tile partitions day pieces read: a row of event day `d` sits in the partitions of
@@ -902,7 +1137,7 @@ pub fn pieces_sql(
             conds.join(" AND ")
         ));
     }
-    for level in [Level::Month, Level::Week] {
+    for level in LEVELS {
         let firsts = spans_of(pieces, level);
         if !firsts.is_empty() {
             let (name, cond) = spans_table(pieces, &table(layout, level), &firsts, day);
@@ -1001,7 +1236,7 @@ async fn register_scoped(
             ));
         }
     }
-    for level in [Level::Month, Level::Week] {
+    for level in LEVELS {
         let firsts: BTreeSet<NaiveDate> = spans_of(pieces, level).into_iter().collect();
         if firsts.is_empty() {
             continue;
@@ -1011,6 +1246,9 @@ async fn register_scoped(
             table(layout, level),
             firsts.clone(),
         ));
+        if level == Level::History {
+            continue;
+        }
         for (i, _, _) in &layout.distinct {
             tables.push((
                 distinct_dir(layout, out, *i, level),
@@ -1108,6 +1346,49 @@ mod tests {
         }
         covered.sort();
         assert_eq!(covered, days("2026-03-18", "2026-06-16"));
+    }
+
+    #[test]
+    fn the_history_ends_with_the_last_month_before_the_stable_days_and_every_window() {
+        let h = |s: &str| Span {
+            level: Level::History,
+            first: d(s),
+        };
+        let none = BTreeSet::new();
+        let floor = d("2025-12-31");
+        // Only unbounded features: the last month that ends by the stable day.
+        assert_eq!(
+            history_span(&none, floor, d("2026-03-31")),
+            Some(h("2026-03-01"))
+        );
+        assert_eq!(
+            history_span(&none, floor, d("2026-03-30")),
+            Some(h("2026-02-01"))
+        );
+        // A 91-day window starting 2026-03-01 (snapshot 2026-05-31): February, which ends
+        // the day before it.
+        let starts = BTreeSet::from([d("2026-03-01"), d("2026-05-03")]);
+        assert_eq!(
+            history_span(&starts, floor, d("2026-05-29")),
+            Some(h("2026-02-01"))
+        );
+        // A history ending on the floor (the day before the first partition) still holds
+        // that day's rows; one ending before it holds nothing.
+        assert_eq!(
+            history_span(&none, floor, d("2026-01-30")),
+            Some(h("2025-12-01"))
+        );
+        assert_eq!(history_span(&none, d("2026-01-01"), d("2026-01-30")), None);
+        assert_eq!(
+            earlier_history(h("2026-02-01"), floor),
+            Some(h("2026-01-01"))
+        );
+        assert_eq!(
+            earlier_history(h("2026-01-01"), floor),
+            Some(h("2025-12-01"))
+        );
+        assert_eq!(earlier_history(h("2025-12-01"), floor), None);
+        assert_eq!(h("2026-02-01").last(), d("2026-02-28"));
     }
 
     #[test]

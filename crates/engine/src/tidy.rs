@@ -35,7 +35,7 @@ pub struct UnusedFolder {
 
 /// The folders under `<output>/tiles/` that `pipeline` reads, as paths inside the output
 /// (`tiles/<source>/<folder>`): each source's day tiles, distinct-value tiles and their
-/// week and month roll-ups.
+/// week, month and history roll-ups.
 pub fn folders_in_use(pipeline: &Pipeline, out: &Location) -> BTreeSet<String> {
     let mut used = BTreeSet::new();
     let mut add = |p: StorePath| {
@@ -46,6 +46,7 @@ pub fn folders_in_use(pipeline: &Pipeline, out: &Location) -> BTreeSet<String> {
         for (i, _, _) in &layout.distinct {
             add(layout.distinct_dir(out, *i));
         }
+        add(crate::rollups::dir(layout, pipeline, out, Level::History));
         for level in [Level::Week, Level::Month] {
             add(crate::rollups::dir(layout, pipeline, out, level));
             for (i, _, _) in &layout.distinct {
@@ -205,9 +206,10 @@ mod tests {
         let new = pipeline("  - { name: n, source: s, agg: count, windows: [7d, 28d] }\n");
         let old_used = folders_in_use(&old, &out);
         let new_used = folders_in_use(&new, &out);
-        // Day tiles, one distinct-value tile, and week and month roll-ups of each.
-        assert_eq!(old_used.len(), 6, "{old_used:?}");
-        assert_eq!(new_used.len(), 3, "{new_used:?}");
+        // Day tiles, one distinct-value tile, week and month roll-ups of each, and the
+        // history roll-ups of the day tiles.
+        assert_eq!(old_used.len(), 7, "{old_used:?}");
+        assert_eq!(new_used.len(), 4, "{new_used:?}");
         let layout = &crate::tiles::layouts(&new)["s"];
         assert!(new_used.contains(&relative(&out, &layout.dir(&out))));
         assert!(old_used.is_disjoint(&new_used));

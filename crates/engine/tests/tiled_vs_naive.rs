@@ -408,8 +408,8 @@ async fn tiled_equals_naive_for_every_day_in_both_modes() {
             }
         }
     }
-    // Weeks and months were both used, in both modes.
-    for level in [Level::Week, Level::Month] {
+    // Weeks, months and histories were all used, in both modes.
+    for level in [Level::Week, Level::Month, Level::History] {
         for as_known in [false, true] {
             assert!(
                 levels_used.contains(&(level, as_known)),
@@ -816,4 +816,179 @@ async fn two_dedupe_columns_give_the_naive_rows() {
             assert_same(&naive, &rows_of_day(&range, *d), &format!("{d} {mode:?}"));
         }
     }
+}
+
+/// Features without a window start (days since, last value and counts over `all`, the
+/// population's state) read the history up to a month's end as one roll-up. It is built
+/// from the months the first time, then extended by one month from the previous one; a
+/// late file in an old partition makes it stale (rebuilt for event-time snapshots, not
+/// used by as-known ones that could not have seen the file). Every snapshot equals the
+/// naive path in both modes.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn history_rollups_extend_month_by_month_and_follow_late_files() {
+    use daymark_engine::rollups::Span;
+    use daymark_spec::FeatureDef;
+    let dir = tempfile::tempdir().unwrap();
+    let world = dir.path().join("world");
+    let mut cfg = WorldConfig::new(&world, 150, 100);
+    cfg.start = day("2026-01-01");
+    cfg.seed = 11;
+    generate(&cfg).unwrap();
+    let mut pipeline = demo_pipeline(&world, &dir.path().join("out"));
+    // The demo's features without a window start: plays' days since the last play, the
+    // subscription state (plan, fee, tenure, spells, counts over all history).
+    pipeline.features.retain(|f| match &f.def {
+        FeatureDef::Aggregate { agg, window, .. } => agg.is_unbounded() || window.days().is_none(),
+        _ => false,
+    });
+    assert!(pipeline.features.len() >= 7, "{}", pipeline.features.len());
+    let out = daymark_store::resolve(&dir.path().join("out").display().to_string(), None).unwrap();
+    let ls = layouts(&pipeline);
+    let (as_known, event_time) = (None, Some(Knowledge::EventTime));
+    let history_of = |plan: &daymark_engine::rollups::DayPlan, source: &str| -> Vec<Span> {
+        plan.sources[source]
+            .spans
+            .iter()
+            .filter(|s| s.level == Level::History)
+            .copied()
+            .collect()
+    };
+    let history = |first: &str| Span {
+        level: Level::History,
+        first: day(first),
+    };
+    let reports = inspect_sources(&pipeline).await;
+    let ctx = daymark_engine::session::session(&Default::default()).unwrap();
+    register_sources(&ctx, &pipeline, &reports).await.unwrap();
+    // 2026-03-10: February ended on or before the day before yesterday, and its rows had
+    // all arrived (the world's late rows come up to 5 days late).
+    let (stats, plan) = checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-03-10"),
+        as_known,
+    )
+    .await;
+    for source in ["plays", "subscriptions"] {
+        assert_eq!(
+            history_of(&plan, source),
+            [history("2026-02-01")],
+            "{source}"
+        );
+        // No month before March is read on its own.
+        let months: Vec<_> = plan.sources[source]
+            .spans
+            .iter()
+            .filter(|s| s.level == Level::Month)
+            .collect();
+        assert!(months.is_empty(), "{source}: {months:?}");
+        assert!(
+            stats[source].rollups_built >= 2,
+            "{source}: {:?}",
+            stats[source]
+        );
+    }
+    checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-03-10"),
+        event_time,
+    )
+    .await;
+    // 2026-04-09: March is added to February's history; the day after reuses it.
+    let (stats, plan) = checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-04-09"),
+        as_known,
+    )
+    .await;
+    assert_eq!(history_of(&plan, "plays"), [history("2026-03-01")]);
+    assert_eq!(
+        stats["plays"].rollups_built, 2,
+        "March and its history: {stats:?}"
+    );
+    let (stats, _) = checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-04-10"),
+        event_time,
+    )
+    .await;
+    assert_eq!(stats["plays"].rollups_built, 0, "{stats:?}");
+    assert_eq!(stats["subscriptions"].rollups_built, 0, "{stats:?}");
+
+    // A late file of 2026-01-20 that arrived on 2026-05-16, after every snapshot here.
+    let part = world.join("plays/dt=2026-01-20");
+    let src = std::fs::read_dir(&part)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.to_string_lossy().contains("arrived-2026-01-20"))
+        .unwrap();
+    rewrite_as_late(&src, &part.join("arrived-2026-05-16-9.parquet"));
+    let reports = inspect_sources(&pipeline).await;
+    let ctx = daymark_engine::session::session(&Default::default()).unwrap();
+    register_sources(&ctx, &pipeline, &reports).await.unwrap();
+    // Event time sees the late events through a rebuilt history; as-known cannot use a
+    // history holding rows that arrived after its cutoff, and reads months, weeks and days.
+    let (stats, plan) = checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-04-09"),
+        event_time,
+    )
+    .await;
+    assert_eq!(history_of(&plan, "plays"), [history("2026-03-01")]);
+    assert!(stats["plays"].rollups_built >= 2, "{stats:?}");
+    let (_, plan) = checked_day(
+        &ctx,
+        &pipeline,
+        &reports,
+        &ls,
+        &out,
+        day("2026-04-09"),
+        as_known,
+    )
+    .await;
+    assert!(history_of(&plan, "plays").is_empty(), "{plan:?}");
+    assert_eq!(history_of(&plan, "subscriptions"), [history("2026-03-01")]);
+}
+
+/// Plans and runs the daily build of `d` and checks it against the naive path; returns the
+/// plan and its stats.
+async fn checked_day(
+    ctx: &datafusion::prelude::SessionContext,
+    pipeline: &daymark_spec::Pipeline,
+    reports: &std::collections::BTreeMap<String, daymark_engine::sources::SourceReport>,
+    ls: &std::collections::BTreeMap<String, daymark_engine::tiles::TileLayout>,
+    out: &daymark_store::Location,
+    d: NaiveDate,
+    mode: Option<Knowledge>,
+) -> (
+    std::collections::BTreeMap<String, daymark_engine::tiles::TileStats>,
+    daymark_engine::rollups::DayPlan,
+) {
+    let (stats, plan) = plan_day(ctx, pipeline, reports, ls, out, d, mode)
+        .await
+        .unwrap();
+    let tiled = run(ctx, &tiled_snapshot_query(pipeline, ls, &plan, mode).sql).await;
+    let naive = run(ctx, &snapshot_query(pipeline, d, mode).sql).await;
+    assert!(naive.num_rows() > 50, "{d}: {} rows", naive.num_rows());
+    assert_same(&naive, &tiled, &format!("{d} {mode:?}"));
+    (stats, plan)
 }
