@@ -954,7 +954,8 @@ async fn history_rollups_extend_month_by_month_and_follow_late_files() {
     )
     .await;
     assert_eq!(history_of(&plan, "plays"), [history("2026-03-01")]);
-    assert!(stats["plays"].rollups_built >= 2, "{stats:?}");
+    // Every earlier history holds the changed partition: this one comes from the tiles.
+    assert_eq!(stats["plays"].rollups_built, 1, "{stats:?}");
     let (_, plan) = checked_day(
         &ctx,
         &pipeline,
