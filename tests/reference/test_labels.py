@@ -183,6 +183,18 @@ def test_labels_equal_duckdb_and_rerun_changes_nothing(short, small_world):
     assert positives > 0
 
 
+def test_labels_read_footers_from_the_builds_cache(short, small_world):
+    """`labels` takes the footers of files the build already read from the output's footer
+    cache (common practice: a daily job should not re-read years of file footers); it reads
+    one footer per source, for its schema."""
+    _, _, first, second = short
+    files = sum(1 for source in ("plays", "subscriptions")
+                for _ in (small_world / "world" / source).glob("dt=*/*.parquet"))
+    for report in (first, second):
+        assert report["footers_cached"] == files, report
+        assert report["footers_read"] <= 2, report
+
+
 def test_demo_label_matures_exactly_when_the_data_allows(daymark, small_world):
     """The demo pipeline (30d + 7d grace): with data complete to 2026-05-01 00:00Z, the
     snapshot of 03-24 matures (its window closes 04-30 05:00Z) and 03-25's does not

@@ -67,12 +67,18 @@ pub async fn labels(args: LabelsArgs) -> Result<u8> {
             args.pipeline.display()
         )));
     };
-    let (reports, problems, _) = inspect(&pipeline, &args.pipeline, None).await;
+    let out = out_location(&pipeline, args.out.as_deref())?;
+    // Footers of files an earlier build or run read come from the output's footer cache,
+    // as in `build` (reading all of them grows with the history).
+    let (reports, problems, _) = inspect(&pipeline, &args.pipeline, Some(&out)).await;
     if !problems.is_empty() {
         print_problems(&problems);
         return Ok(exit::INVALID);
     }
-    let out = out_location(&pipeline, args.out.as_deref())?;
+    let mut footers = daymark_store::FooterReads::default();
+    for r in reports.values() {
+        footers.add(&r.footer_reads);
+    }
     let ctx = daymark_engine::session::session(&Default::default())?;
     daymark_engine::register_sources(&ctx, &pipeline, &reports).await?;
     let watermarks = daymark_labels::source_watermarks(&pipeline, &reports);
@@ -115,6 +121,8 @@ pub async fn labels(args: LabelsArgs) -> Result<u8> {
             })).collect::<Vec<_>>(),
             "written": written,
             "seconds": secs,
+            "footers_read": footers.read,
+            "footers_cached": footers.cached,
         });
         println!("{}", serde_json::to_string_pretty(&doc)?);
         return Ok(exit::OK);
