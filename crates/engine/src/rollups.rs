@@ -26,7 +26,8 @@
 //! ends by D-2 and before every other window start of the source (so no other piece
 //! overlaps it), then the pieces after it. The history of month M is combined from that of
 //! M-1 and the roll-up of M when the former is current (once a month for a daily run),
-//! else from the months. Its `__lo` is the history's first day, before every window start,
+//! else from the day tiles in one grouping (under a memory limit, from the months, rolled
+//! up one per query). Its `__lo` is the history's first day, before every window start,
 //! so bounded features leave it out. Distinct counts over all history keep no history
 //! (their source reads months as before).
 
@@ -499,11 +500,20 @@ fn in_list<T: ToString>(items: impl IntoIterator<Item = T>) -> String {
 /// per query. Without a limit one query is twice as fast (10M-event world: 9-10 s against
 /// 18-20 s). Measured in docs/benchmarks.md, ninth measurement.
 fn spans_per_query(ctx: &SessionContext, stale: usize) -> usize {
-    use datafusion::execution::memory_pool::MemoryLimit;
-    match ctx.runtime_env().memory_pool.memory_limit() {
-        MemoryLimit::Finite(_) => 1,
-        _ => stale.max(1),
+    if memory_limited(ctx) {
+        1
+    } else {
+        stale.max(1)
     }
+}
+
+/// Whether the session runs under a memory limit.
+fn memory_limited(ctx: &SessionContext) -> bool {
+    use datafusion::execution::memory_pool::MemoryLimit;
+    matches!(
+        ctx.runtime_env().memory_pool.memory_limit(),
+        MemoryLimit::Finite(_)
+    )
 }
 
 /// The roll-up rows of tile rows `rows` (which carry the day tiles' columns and `__part`,
@@ -965,7 +975,8 @@ impl Current<'_> {
 
     /// The history roll-up `span` (history from `floor` on), built if missing or stale:
     /// from the latest earlier history still current and the months after it, or from the
-    /// day tiles. A daily build therefore adds one month to the history once a month.
+    /// day tiles (from the months under a memory limit). A daily build therefore adds one
+    /// month to the history once a month.
     async fn history(&mut self, span: Span, floor: NaiveDate) -> Result<Stored, BuildError> {
         let (pipeline, report, layout, out) = (self.pipeline, self.report, self.layout, self.out);
         let folder = dir(layout, pipeline, out, Level::History);
@@ -990,9 +1001,13 @@ impl Current<'_> {
             }
             m = month_start(m.first - Duration::days(1));
         }
+        // Under a memory limit, a first history comes from the months (rolled up one per
+        // query, see `spans_per_query`) rather than from one grouping of every tile row.
         let max_arrival = match base {
-            Some((b, found)) => self.history_from(span, floor, b, found, &folder).await?,
-            None => self.history_from_tiles(span, floor, &folder).await?,
+            None if !memory_limited(self.ctx) => {
+                self.history_from_tiles(span, floor, &folder).await?
+            }
+            base => self.history_from(span, floor, base, &folder).await?,
         };
         let stored = Stored { max_arrival };
         write_marker(out, &folder, report, span, stored).await?;
@@ -1002,49 +1017,59 @@ impl Current<'_> {
 }
 
 impl Current<'_> {
-    /// Writes history `span` from the earlier history `base` (its stored marker:
-    /// `base_found`) and the month roll-ups after it, built if missing; returns the latest
-    /// arrival day of its rows.
+    /// Writes history `span` from the earlier history `base` (with its stored marker), if
+    /// any, and the month roll-ups after it (from the history's first month without one),
+    /// built if missing; returns the latest arrival day of its rows.
     async fn history_from(
         &mut self,
         span: Span,
         floor: NaiveDate,
-        base: Span,
-        base_found: Stored,
+        base: Option<(Span, Stored)>,
         folder: &StorePath,
     ) -> Result<Option<NaiveDate>, BuildError> {
         let (ctx, pipeline, layout, out) = (self.ctx, self.pipeline, self.layout, self.out);
         let mut months = Vec::new();
-        let mut m = month_start(base.last() + Duration::days(1));
+        let mut m = match base {
+            Some((b, _)) => month_start(b.last() + Duration::days(1)),
+            None => month_start(floor),
+        };
         while m.first <= span.first {
             months.push(m);
             m = month_start(m.last() + Duration::days(1));
         }
         let found = self.spans(Level::Month, &months).await?;
-        for level in [Level::Month, Level::History] {
-            register_tables(ctx, pipeline, out, layout, Some(level), self.day).await?;
-        }
+        register_tables(ctx, pipeline, out, layout, Some(Level::Month), self.day).await?;
         let cols = columns(pipeline, layout, &float_sums(ctx, layout).await);
         let names = cols
             .iter()
             .map(|(n, _)| n.as_str())
             .collect::<Vec<_>>()
             .join(", ");
+        let mut inputs = vec![format!(
+            "SELECT __key, {names} FROM {} WHERE dt IN ({})",
+            ident(&table(layout, Level::Month)),
+            in_list(months.iter().map(|m| m.first))
+        )];
+        if let Some((b, _)) = base {
+            register_tables(ctx, pipeline, out, layout, Some(Level::History), self.day).await?;
+            inputs.push(format!(
+                "SELECT __key, {names} FROM {} WHERE dt = {}",
+                ident(&table(layout, Level::History)),
+                literal(&b.first.to_string())
+            ));
+        }
         let sql = format!(
-            "SELECT {} AS __part, __key, {} AS __lo, {} FROM (SELECT __key, {names} FROM {} WHERE dt IN ({}) UNION ALL SELECT __key, {names} FROM {} WHERE dt = {}) GROUP BY __key",
+            "SELECT {} AS __part, __key, {} AS __lo, {} FROM ({}) GROUP BY __key",
             date(span.first),
             date(floor),
             pieces_combined(&cols).join(", "),
-            ident(&table(layout, Level::Month)),
-            in_list(months.iter().map(|m| m.first)),
-            ident(&table(layout, Level::History)),
-            literal(&base.first.to_string())
+            inputs.join(" UNION ALL ")
         );
         crate::tiles::write_split(ctx, &sql, out, folder, &[span.first], &[]).await?;
         Ok(months
             .iter()
             .filter_map(|m| found.get(m))
-            .chain([&base_found])
+            .chain(base.as_ref().map(|(_, s)| s))
             .filter_map(|s| s.max_arrival)
             .max())
     }

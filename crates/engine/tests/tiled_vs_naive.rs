@@ -901,6 +901,31 @@ async fn history_rollups_extend_month_by_month_and_follow_late_files() {
         event_time,
     )
     .await;
+    // Under a memory limit, a first history comes from the months (December to February,
+    // rolled up one per query), not from one grouping of every tile row.
+    let limited = daymark_engine::session::session(&daymark_engine::session::EngineOptions {
+        memory_limit: Some(512 << 20),
+        ..Default::default()
+    })
+    .unwrap();
+    register_sources(&limited, &pipeline, &reports)
+        .await
+        .unwrap();
+    let out_limited =
+        daymark_store::resolve(&dir.path().join("out-limited").display().to_string(), None)
+            .unwrap();
+    let (stats, plan) = checked_day(
+        &limited,
+        &pipeline,
+        &reports,
+        &ls,
+        &out_limited,
+        day("2026-03-10"),
+        as_known,
+    )
+    .await;
+    assert_eq!(history_of(&plan, "plays"), [history("2026-02-01")]);
+    assert!(stats["plays"].rollups_built >= 4, "{stats:?}");
     // 2026-04-09: March is added to February's history; the day after reuses it.
     let (stats, plan) = checked_day(
         &ctx,
