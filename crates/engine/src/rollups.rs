@@ -730,10 +730,9 @@ pub async fn plan_day(
             _ => floor,
         };
         // Features without a window start read the history up to a month's end in one
-        // piece, then the pieces after it.
-        // An as-known snapshot cannot use a history holding rows that arrived after its
-        // cutoff (in the first days of a month, the late rows of the month before): it
-        // tries the month before, then reads months.
+        // piece, then the pieces after it. An as-known snapshot cannot use a history
+        // holding rows that arrived after its cutoff (in the first days of a month, the
+        // late rows of the month before): it tries the month before, then reads months.
         let mut history = None;
         let mut candidate = history_span(&starts, floor, stable)
             .filter(|_| unbounded && !unbounded_distinct(pipeline, name));
