@@ -929,6 +929,27 @@ struct Current<'a> {
 }
 
 impl Current<'_> {
+    /// Makes the day tiles of partitions `parts` current (building those missing or
+    /// stale, checking each partition once) and registered.
+    async fn day_tiles(
+        &mut self,
+        parts: impl Iterator<Item = NaiveDate>,
+    ) -> Result<(), BuildError> {
+        let (ctx, pipeline, report, layout, out) =
+            (self.ctx, self.pipeline, self.report, self.layout, self.out);
+        let unchecked: BTreeSet<NaiveDate> =
+            parts.filter(|d| !self.checked.contains_key(d)).collect();
+        let (s, counts) =
+            crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &unchecked).await?;
+        self.stats.add(&s);
+        self.checked.extend(counts);
+        if s.partitions_built > 0 || !self.registered {
+            register_tables(ctx, pipeline, out, layout, None, self.day).await?;
+            self.registered = true;
+        }
+        Ok(())
+    }
+
     /// The roll-ups of `spans` (all of `level`, a week or a month), those missing or stale
     /// built (with the tiles they read).
     async fn spans(
@@ -949,19 +970,8 @@ impl Current<'_> {
         if stale.is_empty() {
             return Ok(found);
         }
-        let parts: BTreeSet<NaiveDate> = stale
-            .iter()
-            .flat_map(|s| span_partitions(report, *s))
-            .filter(|d| !self.checked.contains_key(d))
-            .collect();
-        let (s, counts) =
-            crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
-        self.stats.add(&s);
-        self.checked.extend(counts);
-        if s.partitions_built > 0 || !self.registered {
-            register_tables(ctx, pipeline, out, layout, None, self.day).await?;
-            self.registered = true;
-        }
+        self.day_tiles(stale.iter().flat_map(|s| span_partitions(report, *s)))
+            .await?;
         let floats = float_sums(ctx, layout).await;
         for spans in stale.chunks(spans_per_query(ctx, stale.len())) {
             let built = build(ctx, pipeline, report, layout, out, level, spans, &floats).await?;
@@ -1087,19 +1097,7 @@ impl Current<'_> {
         let (ctx, pipeline, report, layout, out) =
             (self.ctx, self.pipeline, self.report, self.layout, self.out);
         let parts: BTreeSet<NaiveDate> = span_partitions(report, span).collect();
-        let unchecked: BTreeSet<NaiveDate> = parts
-            .iter()
-            .filter(|d| !self.checked.contains_key(d))
-            .copied()
-            .collect();
-        let (s, counts) =
-            crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &unchecked).await?;
-        self.stats.add(&s);
-        self.checked.extend(counts);
-        if s.partitions_built > 0 || !self.registered {
-            register_tables(ctx, pipeline, out, layout, None, self.day).await?;
-            self.registered = true;
-        }
+        self.day_tiles(parts.iter().copied()).await?;
         let cols = columns(pipeline, layout, &float_sums(ctx, layout).await);
         let rows = format!(
             "SELECT *, {} AS __part FROM {} WHERE {} AND __t <= {}",

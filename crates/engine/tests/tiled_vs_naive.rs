@@ -820,7 +820,8 @@ async fn two_dedupe_columns_give_the_naive_rows() {
 
 /// Features without a window start (days since, last value and counts over `all`, the
 /// population's state) read the history up to a month's end as one roll-up. It is built
-/// from the months the first time, then extended by one month from the previous one; a
+/// from the day tiles the first time (from the months under a memory limit), then
+/// extended by one month from the previous one; a
 /// late file in an old partition makes it stale (rebuilt for event-time snapshots, not
 /// used by as-known ones that could not have seen the file). Every snapshot equals the
 /// naive path in both modes.
