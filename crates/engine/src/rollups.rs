@@ -873,20 +873,22 @@ fn history_span(starts: &BTreeSet<NaiveDate>, floor: NaiveDate, stable: NaiveDat
         Some(s) => stable.min(*s - Duration::days(1)),
         None => stable,
     };
-    let mut month = month_start(limit);
-    if month.last() > limit {
-        month = month_start(month.first - Duration::days(1));
-    }
-    (month.last() >= floor).then_some(Span {
-        level: Level::History,
-        first: month.first,
-    })
+    history_ending_by(limit, floor)
 }
 
 /// The history ending with the month before that of `span`, if that month ends on or
 /// after `floor`.
 fn earlier_history(span: Span, floor: NaiveDate) -> Option<Span> {
-    let month = month_start(span.first - Duration::days(1));
+    history_ending_by(span.first - Duration::days(1), floor)
+}
+
+/// The history ending with the latest month that ends on or before `limit`, if that month
+/// ends on or after `floor`.
+fn history_ending_by(limit: NaiveDate, floor: NaiveDate) -> Option<Span> {
+    let mut month = month_start(limit);
+    if month.last() > limit {
+        month = month_start(month.first - Duration::days(1));
+    }
     (month.last() >= floor).then_some(Span {
         level: Level::History,
         first: month.first,

@@ -821,10 +821,9 @@ async fn two_dedupe_columns_give_the_naive_rows() {
 /// Features without a window start (days since, last value and counts over `all`, the
 /// population's state) read the history up to a month's end as one roll-up. It is built
 /// from the day tiles the first time (from the months under a memory limit), then
-/// extended by one month from the previous one; a
-/// late file in an old partition makes it stale (rebuilt for event-time snapshots, not
-/// used by as-known ones that could not have seen the file). Every snapshot equals the
-/// naive path in both modes.
+/// extended by one month from the previous one; a late file in an old partition makes it
+/// stale (rebuilt for event-time snapshots, not used by as-known ones that could not have
+/// seen the file). Every snapshot equals the naive path in both modes.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn history_rollups_extend_month_by_month_and_follow_late_files() {
     use daymark_engine::rollups::Span;
