@@ -20,6 +20,7 @@
 //! [`register`] adds it, and [`OnePhaseTotals`] (a physical rule, optional) runs the
 //! grouping in one phase.
 
+use datafusion::arrow::array::NullBufferBuilder;
 use datafusion::arrow::array::{
     Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Int64Array, ListArray, PrimitiveArray,
     StructArray, UInt64Array,
@@ -220,17 +221,17 @@ impl Visible {
     }
 }
 
-/// The aggregate of `kind` over the rows visible on each of `days` (ascending): a row is
-/// visible on day `d` from its first visible day `vn` on, if its event day `tn` is before
-/// `d` and, with a window `w`, not before `d - w`. `rows` are in event-day order and hold
-/// only the rows `kind` counts.
+/// The aggregate of `kind` over the rows visible on each of `days` (ascending), pushed
+/// to `out` day after day: a row is visible on day `d` from its first visible day `vn` on,
+/// if its event day `tn` is before `d` and, with a window `w`, not before `d - w`. `rows`
+/// are in event-day order and hold only the rows `kind` counts.
 fn totals(
     kind: WindowKind,
     window: Option<i64>,
     rows: &[TileRow],
     days: &[i64],
-) -> Result<Vec<Option<i128>>> {
-    let mut out = Vec::with_capacity(days.len());
+    out: &mut OutColumn,
+) -> Result<()> {
     let mut visible = Visible::new(kind, rows);
     let mut shown = vec![false; rows.len()];
     // Rows in the window not visible yet, by first visible day.
@@ -272,43 +273,85 @@ fn totals(
             WindowKind::Days => Some(visible.days as i128),
             WindowKind::FirstDay => visible.first.map(i128::from),
             WindowKind::LastDay => visible.last.map(i128::from),
-        });
+        })?;
     }
-    Ok(out)
+    Ok(())
 }
 
-/// The results as an array of `out`'s type (an error where a total does not fit).
-fn to_array(out: &DataType, values: Vec<Option<i128>>) -> Result<ArrayRef> {
-    let overflow = || exec_err!("{WINDOW_TOTALS}: the total does not fit {out}");
-    Ok(match out {
-        DataType::Int64 => {
-            let mut v = Vec::with_capacity(values.len());
-            for x in values {
-                v.push(match x.map(i64::try_from) {
-                    None => None,
-                    Some(Ok(x)) => Some(x),
-                    Some(Err(_)) => return overflow(),
-                });
+/// One output's values for every snapshot row of a batch, in the output's own type,
+/// allocated once at its final length: a batch holds a quarter of a backfill's snapshot
+/// rows, and growing 32-byte `Option<i128>` vectors to that size and converting them
+/// afterwards was about half of a backfill's page faults (docs/benchmarks.md, twentieth
+/// measurement).
+struct OutColumn {
+    values: OutValues,
+    nulls: NullBufferBuilder,
+    out: DataType,
+}
+
+enum OutValues {
+    I64(Vec<i64>),
+    U64(Vec<u64>),
+    Dec(Vec<i128>),
+}
+
+impl OutColumn {
+    fn new(out: &DataType, len: usize) -> Result<Self> {
+        let values = match out {
+            DataType::Int64 => OutValues::I64(Vec::with_capacity(len)),
+            DataType::UInt64 => OutValues::U64(Vec::with_capacity(len)),
+            DataType::Decimal128(_, _) => OutValues::Dec(Vec::with_capacity(len)),
+            other => return exec_err!("window totals: no output of type {other}"),
+        };
+        Ok(OutColumn {
+            values,
+            nulls: NullBufferBuilder::new(len),
+            out: out.clone(),
+        })
+    }
+
+    /// Appends one value (an error where it does not fit the output's type).
+    fn push(&mut self, x: Option<i128>) -> Result<()> {
+        let fits = match (&mut self.values, x) {
+            (OutValues::I64(v), Some(x)) => i64::try_from(x).map(|x| v.push(x)).is_ok(),
+            (OutValues::U64(v), Some(x)) => u64::try_from(x).map(|x| v.push(x)).is_ok(),
+            (OutValues::Dec(v), Some(x)) => {
+                v.push(x);
+                true
             }
-            Arc::new(Int64Array::from(v))
-        }
-        DataType::UInt64 => {
-            let mut v = Vec::with_capacity(values.len());
-            for x in values {
-                v.push(match x.map(u64::try_from) {
-                    None => None,
-                    Some(Ok(x)) => Some(x),
-                    Some(Err(_)) => return overflow(),
-                });
+            (OutValues::I64(v), None) => {
+                v.push(0);
+                true
             }
-            Arc::new(UInt64Array::from(v))
+            (OutValues::U64(v), None) => {
+                v.push(0);
+                true
+            }
+            (OutValues::Dec(v), None) => {
+                v.push(0);
+                true
+            }
+        };
+        if !fits {
+            return exec_err!("{WINDOW_TOTALS}: the total does not fit {}", self.out);
         }
-        DataType::Decimal128(p, s) => {
-            let a: PrimitiveArray<Decimal128Type> = Decimal128Array::from(values);
-            Arc::new(a.with_precision_and_scale(*p, *s)?)
-        }
-        other => return exec_err!("window totals: no output of type {other}"),
-    })
+        self.nulls.append(x.is_some());
+        Ok(())
+    }
+
+    fn finish(mut self) -> Result<ArrayRef> {
+        let nulls = self.nulls.finish();
+        Ok(match self.values {
+            OutValues::I64(v) => Arc::new(Int64Array::try_new(v.into(), nulls)?),
+            OutValues::U64(v) => Arc::new(UInt64Array::try_new(v.into(), nulls)?),
+            OutValues::Dec(v) => {
+                let DataType::Decimal128(p, s) = self.out else {
+                    return exec_err!("window totals: no output of type {}", self.out);
+                };
+                Arc::new(Decimal128Array::try_new(v.into(), nulls)?.with_precision_and_scale(p, s)?)
+            }
+        })
+    }
 }
 
 /// `daymark_window_totals(tn, vn, s, e, k0, w0, x0, k1, w1, x1, ...)`, grouped by key:
@@ -596,15 +639,25 @@ impl GroupsAccumulator for KeyTotals {
         let keys = emit_to.take_needed(&mut self.keys);
         self.recount();
         let slots = self.slot_args.len();
+        let key_days: Vec<Vec<i64>> = keys.iter().map(Self::days).collect();
+        let total: usize = key_days.iter().map(Vec::len).sum();
+        let Ok(last) = i32::try_from(total) else {
+            return exec_err!("{WINDOW_TOTALS}: too many snapshot rows in one batch");
+        };
         let mut offsets: Vec<i32> = Vec::with_capacity(keys.len() + 1);
         offsets.push(0);
-        let mut dn: Vec<i64> = Vec::new();
-        let mut outs: Vec<Vec<Option<i128>>> = vec![Vec::new(); self.outputs.len()];
+        let mut dn: Vec<i64> = Vec::with_capacity(total);
+        let mut outs = self
+            .outputs
+            .iter()
+            .map(|o| OutColumn::new(&o.out, total))
+            .collect::<Result<Vec<_>>>()?;
         let mut rows: Vec<TileRow> = Vec::new();
-        for k in &keys {
-            let days = Self::days(k);
+        let mut order: Vec<usize> = Vec::new();
+        for (k, days) in keys.iter().zip(key_days) {
             // Tile rows in event-day order, shared by all outputs.
-            let mut order: Vec<usize> = (0..k.tn.len()).collect();
+            order.clear();
+            order.extend(0..k.tn.len());
             if !k.tn.is_sorted() {
                 order.sort_by_key(|&r| k.tn[r]);
             }
@@ -618,17 +671,16 @@ impl GroupsAccumulator for KeyTotals {
                         x,
                     })
                 }));
-                values.extend(totals(o.kind, o.window, &rows, &days)?);
+                totals(o.kind, o.window, &rows, &days, values)?;
             }
-            let Ok(end) = i32::try_from(dn.len() + days.len()) else {
-                return exec_err!("{WINDOW_TOTALS}: too many snapshot rows in one batch");
-            };
             dn.extend(days);
-            offsets.push(end);
+            // At most `last`, checked above.
+            offsets.push(dn.len() as i32);
         }
+        debug_assert_eq!(offsets.last().copied(), Some(last));
         let mut columns: Vec<ArrayRef> = vec![Arc::new(Int64Array::from(dn))];
-        for (o, values) in self.outputs.iter().zip(outs) {
-            columns.push(to_array(&o.out, values)?);
+        for values in outs {
+            columns.push(values.finish()?);
         }
         let days = StructArray::try_new(self.fields.clone(), columns, None)?;
         Ok(Arc::new(ListArray::try_new(
