@@ -293,7 +293,7 @@ async fn build_locked(
                         stats.ignored.event_after_arrival_rows
                     )
                 },
-                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "rollups_built": stats.rollups_built, "rollups_reused": stats.rollups_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.ignored.null_key_rows, "event_after_arrival_rows": stats.ignored.event_after_arrival_rows}),
+                json!({"source": source, "partitions_built": stats.partitions_built, "partitions_reused": stats.partitions_reused, "markers_read": stats.markers_read, "rollups_built": stats.rollups_built, "rollups_reused": stats.rollups_reused, "raw_files": stats.raw_files, "raw_bytes": stats.raw_bytes, "null_key_rows": stats.ignored.null_key_rows, "event_after_arrival_rows": stats.ignored.event_after_arrival_rows}),
             );
             total.add(stats);
         }

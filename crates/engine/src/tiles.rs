@@ -733,6 +733,9 @@ pub struct TileStats {
     pub rollups_built: u64,
     /// Roll-ups whose stored copy was still current.
     pub rollups_reused: u64,
+    /// Tile markers read one by one, for partitions the folder's marker index
+    /// ([`MarkerIndex`]) did not hold as current.
+    pub markers_read: u64,
 }
 
 impl TileStats {
@@ -745,6 +748,7 @@ impl TileStats {
         self.ignored.add(&other.ignored);
         self.rollups_built += other.rollups_built;
         self.rollups_reused += other.rollups_reused;
+        self.markers_read += other.markers_read;
     }
 }
 
@@ -895,6 +899,65 @@ async fn read_marker(layout: &TileLayout, out: &Location, day: NaiveDate) -> Opt
     serde_json::from_slice(&bytes).ok()
 }
 
+/// Version of [`MarkerIndex`]'s file; another version is ignored (and rewritten).
+const MARKER_INDEX_FORMAT: u32 = 1;
+
+/// Every current marker of a tile folder in one object (`_markers.json` in the folder),
+/// so that a daily build checks a source's hundreds of partitions with one read instead
+/// of one read per partition (on an object store, one request each). The markers stay the
+/// record: an entry is written only after the tile and marker it stands for, and a
+/// partition whose entry is missing or whose files' fingerprint no longer matches it has
+/// its own marker read (and is rebuilt when that does not match either), so a stale or
+/// lost index costs reads, never a wrong tile.
+#[derive(Debug, Default, serde::Serialize, serde::Deserialize)]
+struct MarkerIndex {
+    format: u32,
+    /// Per partition (`YYYY-MM-DD`): the hash of its files' fingerprint, and its ignored
+    /// rows.
+    days: BTreeMap<String, IndexEntry>,
+}
+
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+struct IndexEntry {
+    inputs: String,
+    #[serde(flatten)]
+    ignored: Ignored,
+}
+
+/// What [`ensure_tiles`] found of one partition: its files and their fingerprint (and its
+/// hash), its ignored rows when its tile is current, and whether its marker was read.
+struct Check<'a> {
+    day: NaiveDate,
+    files: &'a [DataFile],
+    inputs: serde_json::Value,
+    hash: String,
+    current: Option<Ignored>,
+    read: bool,
+}
+
+fn marker_index_path(layout: &TileLayout, out: &Location) -> StorePath {
+    child(&layout.dir(out), &["_markers.json"])
+}
+
+/// The folder's marker index (empty when there is none, or it is unreadable or of another
+/// format).
+async fn read_marker_index(layout: &TileLayout, out: &Location) -> MarkerIndex {
+    let read = async {
+        let bytes = out
+            .store
+            .get(&marker_index_path(layout, out))
+            .await
+            .ok()?
+            .bytes()
+            .await
+            .ok()?;
+        serde_json::from_slice::<MarkerIndex>(&bytes).ok()
+    };
+    read.await
+        .filter(|i| i.format == MARKER_INDEX_FORMAT)
+        .unwrap_or_default()
+}
+
 /// Builds the tiles of `source` for `days` that are missing or stale, many partitions per
 /// query. Returns what it cost and, for every one of `days` that has a raw partition, the
 /// rows it held that were ignored (from the marker of a current tile, or counted while
@@ -911,31 +974,78 @@ pub async fn ensure_tiles(
     let source = &pipeline.sources[&layout.source];
     let mut stats = TileStats::default();
     let mut ignored = BTreeMap::new();
-    let checks: Vec<(NaiveDate, &[DataFile], serde_json::Value, Option<Marker>)> =
-        futures::stream::iter(
-            days.iter()
-                .filter_map(|d| report.listing.days.get(d).map(|f| (*d, f.as_slice()))),
-        )
-        .map(|(day, files)| async move {
-            (
+    let mut index = read_marker_index(layout, out).await;
+    // Partitions the index holds as current need no read; the others' markers are read,
+    // many at once.
+    let checks: Vec<Check> = futures::stream::iter(
+        days.iter()
+            .filter_map(|d| report.listing.days.get(d).map(|f| (*d, f.as_slice()))),
+    )
+    .map(|(day, files)| {
+        let inputs = fingerprint(files);
+        let hash = hash_value(&inputs);
+        let indexed = index
+            .days
+            .get(&day.to_string())
+            .filter(|e| e.inputs == hash)
+            .map(|e| e.ignored);
+        async move {
+            let (current, read) = match indexed {
+                Some(ignored) => (Some(ignored), false),
+                None => (
+                    read_marker(layout, out, day)
+                        .await
+                        .filter(|m| m.inputs == inputs)
+                        .map(|m| m.ignored),
+                    true,
+                ),
+            };
+            Check {
                 day,
                 files,
-                fingerprint(files),
-                read_marker(layout, out, day).await,
-            )
-        })
-        .buffered(MARKERS_AT_ONCE)
-        .collect()
-        .await;
+                inputs,
+                hash,
+                current,
+                read,
+            }
+        }
+    })
+    .buffered(MARKERS_AT_ONCE)
+    .collect()
+    .await;
     // (day, raw files, fingerprint) of every partition whose tile must be (re)built.
     let mut stale: Vec<(NaiveDate, &[DataFile], serde_json::Value)> = Vec::new();
-    for (day, files, inputs, marker) in checks {
-        match marker {
-            Some(m) if m.inputs == inputs => {
+    let mut hashes: BTreeMap<NaiveDate, String> = BTreeMap::new();
+    let mut index_changed = false;
+    for Check {
+        day,
+        files,
+        inputs,
+        hash,
+        current,
+        read,
+    } in checks
+    {
+        stats.markers_read += read as u64;
+        match current {
+            Some(n) => {
                 stats.partitions_reused += 1;
-                ignored.insert(day, m.ignored);
+                ignored.insert(day, n);
+                if read {
+                    index.days.insert(
+                        day.to_string(),
+                        IndexEntry {
+                            inputs: hash,
+                            ignored: n,
+                        },
+                    );
+                    index_changed = true;
+                }
             }
-            _ => stale.push((day, files, inputs)),
+            None => {
+                hashes.insert(day, hash);
+                stale.push((day, files, inputs));
+            }
         }
     }
     // A folder that is not a partition (the listing ignored it) could fall inside a range
@@ -1022,11 +1132,32 @@ pub async fn ensure_tiles(
         for w in written {
             let (day, n) = w?;
             ignored.insert(day, n);
+            if let Some(hash) = hashes.remove(&day) {
+                index.days.insert(
+                    day.to_string(),
+                    IndexEntry {
+                        inputs: hash,
+                        ignored: n,
+                    },
+                );
+                index_changed = true;
+            }
         }
         for (_, files, _) in batch {
             stats.partitions_built += 1;
             stats.raw_files += files.len() as u64;
             stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
+        }
+    }
+    if index_changed {
+        // After every tile and marker it stands for. A failed write only means the next
+        // build reads those markers one by one again.
+        index.format = MARKER_INDEX_FORMAT;
+        if let Ok(body) = serde_json::to_vec(&index) {
+            let _ = out
+                .store
+                .put(&marker_index_path(layout, out), PutPayload::from(body))
+                .await;
         }
     }
     Ok((stats, ignored))

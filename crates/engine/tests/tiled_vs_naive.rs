@@ -624,8 +624,12 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     .await;
     assert!(!rolled, "05-15: every plays day is a day piece");
     assert_tiles_sorted_by_key(&dir.path().join("out/tiles"));
-    let (_, _, event_time) =
+    let (stats, _, event_time) =
         daily(&ctx, &pipeline, &reports, &ls, &out, snapshot, event_mode).await;
+    // The same partitions again: every marker comes from the folders' marker indexes.
+    for (source, s) in &stats {
+        assert_eq!(s.markers_read, 0, "{source}: {s:?}");
+    }
     let (stats, rolled, later_before) =
         daily(&ctx, &pipeline, &reports, &ls, &out, later, event_mode).await;
     assert!(rolled, "05-19: plays reads the week of 05-04 as a roll-up");
@@ -657,6 +661,14 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     assert_eq!(
         stats["plays"].partitions_built, 1,
         "only the partition that changed"
+    );
+    // Its marker index entry no longer matches its files: its own marker is read (and
+    // does not match either); every other partition is checked from the index.
+    assert_eq!(stats["plays"].markers_read, 1, "{stats:?}");
+    assert_eq!(
+        stats["subscriptions"].markers_read + stats["support"].markers_read,
+        0,
+        "{stats:?}"
     );
     assert_eq!(
         stats["subscriptions"].partitions_built + stats["support"].partitions_built,
