@@ -915,6 +915,19 @@ struct MarkerIndex {
     /// Per partition (`YYYY-MM-DD`): the hash of its files' fingerprint, and its ignored
     /// rows.
     days: BTreeMap<String, IndexEntry>,
+    /// Entries added or replaced since it was read.
+    #[serde(skip)]
+    changed: bool,
+}
+
+impl MarkerIndex {
+    /// Records partition `day`'s current marker: the hash of its files' fingerprint and
+    /// its ignored rows.
+    fn record(&mut self, day: NaiveDate, inputs: String, ignored: Ignored) {
+        self.days
+            .insert(day.to_string(), IndexEntry { inputs, ignored });
+        self.changed = true;
+    }
 }
 
 #[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
@@ -1016,7 +1029,6 @@ pub async fn ensure_tiles(
     // (day, raw files, fingerprint) of every partition whose tile must be (re)built.
     let mut stale: Vec<(NaiveDate, &[DataFile], serde_json::Value)> = Vec::new();
     let mut hashes: BTreeMap<NaiveDate, String> = BTreeMap::new();
-    let mut index_changed = false;
     for Check {
         day,
         files,
@@ -1032,14 +1044,7 @@ pub async fn ensure_tiles(
                 stats.partitions_reused += 1;
                 ignored.insert(day, n);
                 if read {
-                    index.days.insert(
-                        day.to_string(),
-                        IndexEntry {
-                            inputs: hash,
-                            ignored: n,
-                        },
-                    );
-                    index_changed = true;
+                    index.record(day, hash, n);
                 }
             }
             None => {
@@ -1133,14 +1138,7 @@ pub async fn ensure_tiles(
             let (day, n) = w?;
             ignored.insert(day, n);
             if let Some(hash) = hashes.remove(&day) {
-                index.days.insert(
-                    day.to_string(),
-                    IndexEntry {
-                        inputs: hash,
-                        ignored: n,
-                    },
-                );
-                index_changed = true;
+                index.record(day, hash, n);
             }
         }
         for (_, files, _) in batch {
@@ -1149,7 +1147,7 @@ pub async fn ensure_tiles(
             stats.raw_bytes += files.iter().map(|f| f.size).sum::<u64>();
         }
     }
-    if index_changed {
+    if index.changed {
         // After every tile and marker it stands for. A failed write only means the next
         // build reads those markers one by one again.
         index.format = MARKER_INDEX_FORMAT;
