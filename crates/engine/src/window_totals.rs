@@ -20,10 +20,9 @@
 //! [`register`] adds it, and [`OnePhaseTotals`] (a physical rule, optional) runs the
 //! grouping in one phase.
 
-use datafusion::arrow::array::NullBufferBuilder;
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Int64Array, ListArray, PrimitiveArray,
-    StructArray, UInt64Array,
+    Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Int64Array, ListArray,
+    NullBufferBuilder, PrimitiveArray, StructArray, UInt64Array,
 };
 use datafusion::arrow::buffer::OffsetBuffer;
 use datafusion::arrow::datatypes::{
@@ -312,23 +311,13 @@ impl OutColumn {
 
     /// Appends one value (an error where it does not fit the output's type).
     fn push(&mut self, x: Option<i128>) -> Result<()> {
-        let fits = match (&mut self.values, x) {
-            (OutValues::I64(v), Some(x)) => i64::try_from(x).map(|x| v.push(x)).is_ok(),
-            (OutValues::U64(v), Some(x)) => u64::try_from(x).map(|x| v.push(x)).is_ok(),
-            (OutValues::Dec(v), Some(x)) => {
-                v.push(x);
-                true
-            }
-            (OutValues::I64(v), None) => {
-                v.push(0);
-                true
-            }
-            (OutValues::U64(v), None) => {
-                v.push(0);
-                true
-            }
-            (OutValues::Dec(v), None) => {
-                v.push(0);
+        // A NULL is stored as 0 under its null bit.
+        let v = x.unwrap_or(0);
+        let fits = match &mut self.values {
+            OutValues::I64(out) => i64::try_from(v).map(|v| out.push(v)).is_ok(),
+            OutValues::U64(out) => u64::try_from(v).map(|v| out.push(v)).is_ok(),
+            OutValues::Dec(out) => {
+                out.push(v);
                 true
             }
         };
