@@ -378,15 +378,11 @@ fn direct_tail(
     use crate::window_totals::WindowKind;
     // Value columns of the union: (name, type, source, expression over the tile row).
     let mut columns: Vec<(String, DataType, String, String)> = Vec::new();
-    // (source, tile column) -> the first tile column of that source defined the same way.
+    // (source, tile column alias) -> the stored column defined the same way.
     let mut same_columns: HashMap<(String, String), String> = HashMap::new();
     for (name, l) in layouts {
-        let mut first: HashMap<&str, &str> = HashMap::new();
-        for c in &l.columns {
-            if let Some((def, col)) = c.rsplit_once(" AS ") {
-                let canonical = *first.entry(def).or_insert(col);
-                same_columns.insert((name.clone(), col.to_string()), canonical.to_string());
-            }
+        for (alias, stored) in &l.aliases {
+            same_columns.insert((name.clone(), alias.clone()), stored.clone());
         }
     }
     // Per output: (kind, window, union column) arguments, and the output's name.

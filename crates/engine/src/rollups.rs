@@ -651,23 +651,26 @@ async fn register_tables(
     level: Option<Level>,
     day: NaiveDate,
 ) -> Result<(), BuildError> {
+    // Roll-ups hold every column under its own name (they are built through the day
+    // tiles' aliases); only the day tiles need theirs.
     let mut tables = vec![match level {
-        None => (layout.dir(out), layout.table()),
-        Some(l) => (dir(layout, pipeline, out, l), table(layout, l)),
+        None => (layout.dir(out), layout.table(), layout.aliases.as_slice()),
+        Some(l) => (dir(layout, pipeline, out, l), table(layout, l), &[][..]),
     }];
     for (i, _, _) in &layout.distinct {
         tables.push(match level {
-            None => (layout.distinct_dir(out, *i), layout.distinct_table(*i)),
+            None => (layout.distinct_dir(out, *i), layout.distinct_table(*i), &[]),
             // The history keeps no distinct values (see `unbounded_distinct`).
             Some(Level::History) => continue,
             Some(l) => (
                 distinct_dir(layout, out, *i, l),
                 distinct_table(layout, *i, l),
+                &[],
             ),
         });
     }
-    for (folder, name) in tables {
-        crate::tiles::register_tiles(ctx, out, &folder, &name)
+    for (folder, name, aliases) in tables {
+        crate::tiles::register_tiles(ctx, out, &folder, &name, aliases)
             .await
             .map_err(|source| BuildError::Engine { day, source })?;
     }
@@ -1319,12 +1322,18 @@ async fn register_scoped(
     let mut tables = Vec::new();
     let days = day_partitions(pieces);
     if !days.is_empty() {
-        tables.push((layout.dir(out), layout.table(), days.clone()));
+        tables.push((
+            layout.dir(out),
+            layout.table(),
+            days.clone(),
+            layout.aliases.as_slice(),
+        ));
         for (i, _, _) in &layout.distinct {
             tables.push((
                 layout.distinct_dir(out, *i),
                 layout.distinct_table(*i),
                 days.clone(),
+                &[],
             ));
         }
     }
@@ -1337,6 +1346,7 @@ async fn register_scoped(
             dir(layout, pipeline, out, level),
             table(layout, level),
             firsts.clone(),
+            &[],
         ));
         if level == Level::History {
             continue;
@@ -1346,10 +1356,11 @@ async fn register_scoped(
                 distinct_dir(layout, out, *i, level),
                 distinct_table(layout, *i, level),
                 firsts.clone(),
+                &[],
             ));
         }
     }
-    for (folder, name, parts) in tables {
+    for (folder, name, parts, aliases) in tables {
         crate::tiles::register_partitions(
             ctx,
             out,
@@ -1357,6 +1368,7 @@ async fn register_scoped(
             &name,
             &scoped_table(&name, day),
             &parts,
+            aliases,
         )
         .await
         .map_err(|source| BuildError::Engine { day, source })?;

@@ -17,11 +17,14 @@ use crate::sources::SourceReport;
 use crate::sql::{day_of_sql, ident, literal};
 use chrono::NaiveDate;
 use datafusion::arrow::array::RecordBatch;
-use datafusion::arrow::datatypes::DataType;
+use datafusion::arrow::datatypes::{DataType, Schema, TimeUnit};
+use datafusion::common::{Column, TableReference};
 use datafusion::datasource::file_format::parquet::ParquetFormat;
 use datafusion::datasource::listing::{
     ListingOptions, ListingTable, ListingTableConfig, ListingTableUrl,
 };
+use datafusion::datasource::{provider_as_source, TableProvider, ViewTable};
+use datafusion::logical_expr::{Expr, LogicalPlanBuilder};
 use datafusion::prelude::SessionContext;
 use daymark_spec::hash::hash_value;
 use daymark_spec::{Aggregation, FeatureDef, Pipeline, Population, Source};
@@ -47,8 +50,14 @@ pub struct TileLayout {
     pub source: String,
     /// Short hash of everything the tiles depend on; names their folder.
     pub hash: String,
-    /// SELECT items of the main tile (over de-duplicated rows with `__t`, `__a`).
+    /// SELECT items of the main tile (over de-duplicated rows with `__t`, `__a`), one per
+    /// distinct definition.
     pub columns: Vec<String>,
+    /// Columns defined the same way as an earlier one, as (name, stored column): the files
+    /// hold each definition once and the tile tables show it under every name
+    /// ([`register_tiles`]). (Each window of a feature used to get its own copy: the
+    /// benchmark pipeline's tiles held nine identical `COUNT(*)` columns.)
+    pub aliases: Vec<(String, String)>,
     /// Distinct-value tiles: (feature index, value expression, filter).
     pub distinct: Vec<(usize, String, Option<String>)>,
 }
@@ -82,11 +91,33 @@ fn cond(filter: &Option<String>) -> String {
     }
 }
 
+/// The SELECT items of a main tile, one per distinct definition: a column defined as an
+/// earlier one is an alias of it.
+#[derive(Default)]
+struct Columns {
+    items: Vec<String>,
+    first: BTreeMap<String, String>,
+    aliases: Vec<(String, String)>,
+}
+
+impl Columns {
+    /// Adds column `name` defined as `def` (an aggregate over tile rows).
+    fn push(&mut self, def: String, name: String) {
+        match self.first.get(&def) {
+            Some(stored) => self.aliases.push((name, stored.clone())),
+            None => {
+                self.items.push(format!("{def} AS {name}"));
+                self.first.insert(def, name);
+            }
+        }
+    }
+}
+
 /// The tile layout of `source`, or `None` if no feature or population reads it.
 pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
-    let mut columns = Vec::new();
+    let mut columns = Columns::default();
     let mut distinct = Vec::new();
     match &pipeline.population {
         Population::State(s) if s.source == source.name => {
@@ -96,14 +127,23 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
                 .flatten()
                 .collect::<Vec<_>>()
                 .join(", ");
-            columns.push(format!("last_value({col} ORDER BY {order}) AS __ps"));
-            columns.push(format!("last_value({ev} ORDER BY {order}) AS __pt"));
+            columns.push(
+                format!("last_value({col} ORDER BY {order})"),
+                "__ps".to_string(),
+            );
+            columns.push(
+                format!("last_value({ev} ORDER BY {order})"),
+                "__pt".to_string(),
+            );
             if let Some(a) = &arr {
-                columns.push(format!("last_value({a} ORDER BY {order}) AS __pa"));
+                columns.push(
+                    format!("last_value({a} ORDER BY {order})"),
+                    "__pa".to_string(),
+                );
             }
         }
         Population::RecentActivity(r) if r.source == source.name => {
-            columns.push(format!("COUNT(*){} AS __pc", cond(&r.filter)));
+            columns.push(format!("COUNT(*){}", cond(&r.filter)), "__pc".to_string());
         }
         _ => {}
     }
@@ -128,22 +168,22 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
             .unwrap_or_default();
         match agg {
             Aggregation::Count if !e.is_empty() => {
-                columns.push(format!("COUNT({e}){only} AS __c{i}"))
+                columns.push(format!("COUNT({e}){only}"), format!("__c{i}"))
             }
-            _ => columns.push(format!("COUNT(*){only} AS __c{i}")),
+            _ => columns.push(format!("COUNT(*){only}"), format!("__c{i}")),
         }
         match agg {
             Aggregation::Sum => {
-                columns.push(format!("SUM({e}){only} AS __s{i}"));
+                columns.push(format!("SUM({e}){only}"), format!("__s{i}"));
                 // Non-null values summed: tells an empty sum (NULL) from a zero one.
-                columns.push(format!("COUNT({e}){only} AS __n{i}"));
+                columns.push(format!("COUNT({e}){only}"), format!("__n{i}"));
             }
             Aggregation::Mean => {
-                columns.push(format!("SUM(CAST({e} AS DOUBLE)){only} AS __s{i}"));
-                columns.push(format!("COUNT({e}){only} AS __n{i}"));
+                columns.push(format!("SUM(CAST({e} AS DOUBLE)){only}"), format!("__s{i}"));
+                columns.push(format!("COUNT({e}){only}"), format!("__n{i}"));
             }
-            Aggregation::Min => columns.push(format!("MIN({e}){only} AS __m{i}")),
-            Aggregation::Max => columns.push(format!("MAX({e}){only} AS __m{i}")),
+            Aggregation::Min => columns.push(format!("MIN({e}){only}"), format!("__m{i}")),
+            Aggregation::Max => columns.push(format!("MAX({e}){only}"), format!("__m{i}")),
             Aggregation::First | Aggregation::Last => {
                 let func = if *agg == Aggregation::First {
                     "first_value"
@@ -155,23 +195,32 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
                     .flatten()
                     .collect::<Vec<_>>()
                     .join(", ");
-                columns.push(format!("{func}({e} ORDER BY {order}){only} AS __v{i}"));
-                columns.push(format!("{func}({ev} ORDER BY {order}){only} AS __vt{i}"));
+                columns.push(
+                    format!("{func}({e} ORDER BY {order}){only}"),
+                    format!("__v{i}"),
+                );
+                columns.push(
+                    format!("{func}({ev} ORDER BY {order}){only}"),
+                    format!("__vt{i}"),
+                );
                 if let Some(a) = &arr {
-                    columns.push(format!("{func}({a} ORDER BY {order}){only} AS __va{i}"));
+                    columns.push(
+                        format!("{func}({a} ORDER BY {order}){only}"),
+                        format!("__va{i}"),
+                    );
                 }
             }
             Aggregation::CountDistinct => distinct.push((i, e.clone(), filter.clone())),
             _ => {}
         }
     }
-    if columns.is_empty() && distinct.is_empty() {
+    if columns.items.is_empty() && distinct.is_empty() {
         return None;
     }
     // Provenance (crate::provenance): the latest event and arrival time of each tile row.
-    columns.push(format!("MAX({ev}) AS __mev"));
+    columns.push(format!("MAX({ev})"), "__mev".to_string());
     if let Some(a) = &arr {
-        columns.push(format!("MAX({a}) AS __mar"));
+        columns.push(format!("MAX({a})"), "__mar".to_string());
     }
     let hash = hash_value(&json!({
         "format": TILE_FORMAT,
@@ -179,14 +228,17 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
         "key": source.key,
         "timezone": pipeline.file.timezone,
         "cutoff_time": pipeline.file.cutoff_time,
-        "columns": columns,
+        // Not the aliases: a feature that only adds another window over a column the
+        // tiles already hold reuses them.
+        "columns": columns.items,
         "distinct": distinct.iter().map(|(i, e, f)| json!([i, e, f])).collect::<Vec<_>>(),
     }))[..16]
         .to_string();
     Some(TileLayout {
         source: source.name.clone(),
         hash,
-        columns,
+        columns: columns.items,
+        aliases: columns.aliases,
         distinct,
     })
 }
@@ -245,12 +297,14 @@ fn rows_sql(
 
 /// The SQL of the main tiles of partitions `days`, ordered by partition (`__part` first);
 /// `names_are_dates` when every partition folder name of the source is a date.
+/// `schema` is the source files' (when known): it tells the unit of the time columns.
 pub fn tile_sql(
     pipeline: &Pipeline,
     source: &Source,
     layout: &TileLayout,
     days: &[NaiveDate],
     names_are_dates: bool,
+    schema: Option<&Schema>,
 ) -> String {
     let mut cols = vec![
         "__part".to_string(),
@@ -263,9 +317,8 @@ pub fn tile_sql(
     cols.push("COUNT(*) AS __rows".to_string());
     cols.push(match &source.spec.arrival_time {
         Some(a) => format!(
-            "COUNT(*) FILTER (WHERE {} > {} + INTERVAL '{CLOCK_SKEW_TOLERANCE_SECS} seconds') AS __ahead",
-            ident(&source.spec.event_time),
-            ident(a)
+            "COUNT(*) FILTER (WHERE {}) AS __ahead",
+            event_after_arrival(&source.spec.event_time, a, schema)
         ),
         None => "CAST(0 AS BIGINT) AS __ahead".to_string(),
     });
@@ -290,6 +343,39 @@ pub fn tile_sql(
         cols.join(", "),
         rows_sql(pipeline, source, days, names_are_dates)
     )
+}
+
+/// SQL: event time `ev` is after arrival time `arr` by more than the tolerance
+/// ([`CLOCK_SKEW_TOLERANCE_SECS`]). When `schema` shows both as timestamps of one unit,
+/// their raw values are compared: adding an interval to a timestamp goes through calendar
+/// arithmetic row by row, which cost about 7% of building the benchmark's tiles (`perf`,
+/// docs/benchmarks.md).
+fn event_after_arrival(ev: &str, arr: &str, schema: Option<&Schema>) -> String {
+    let unit = |c: &str| match schema?.field_with_name(c).ok()?.data_type() {
+        DataType::Timestamp(u, _) => Some(*u),
+        _ => None,
+    };
+    match (unit(ev), unit(arr)) {
+        (Some(u), Some(v)) if u == v => {
+            let per_second: i64 = match u {
+                TimeUnit::Second => 1,
+                TimeUnit::Millisecond => 1_000,
+                TimeUnit::Microsecond => 1_000_000,
+                TimeUnit::Nanosecond => 1_000_000_000,
+            };
+            format!(
+                "CAST({} AS BIGINT) - CAST({} AS BIGINT) > {}",
+                ident(ev),
+                ident(arr),
+                CLOCK_SKEW_TOLERANCE_SECS * per_second
+            )
+        }
+        _ => format!(
+            "{} > {} + INTERVAL '{CLOCK_SKEW_TOLERANCE_SECS} seconds'",
+            ident(ev),
+            ident(arr)
+        ),
+    }
 }
 
 /// The column of [`tile_sql`] holding, per tile row, the values of distinct-value tile
@@ -793,17 +879,17 @@ pub async fn prepare(
             stats.insert(source.clone(), s);
             continue;
         }
-        let register = |dir: StorePath, table: String| async move {
-            register_tiles(ctx, out, &dir, &table)
+        let mut tables = vec![(layout.dir(out), layout.table(), layout.aliases.as_slice())];
+        for (i, _, _) in &layout.distinct {
+            tables.push((layout.distinct_dir(out, *i), layout.distinct_table(*i), &[]));
+        }
+        for (dir, table, aliases) in tables {
+            register_tiles(ctx, out, &dir, &table, aliases)
                 .await
                 .map_err(|e| BuildError::Engine {
                     day: days[0],
                     source: e,
-                })
-        };
-        register(layout.dir(out), layout.table()).await?;
-        for (i, _, _) in &layout.distinct {
-            register(layout.distinct_dir(out, *i), layout.distinct_table(*i)).await?;
+                })?;
         }
         stats.insert(source.clone(), s);
     }
@@ -1100,7 +1186,14 @@ pub async fn ensure_tiles(
         let batch_days: Vec<NaiveDate> = batch.iter().map(|(d, _, _)| *d).collect();
         let counted = write_split(
             ctx,
-            &tile_sql(pipeline, source, layout, &batch_days, names_are_dates),
+            &tile_sql(
+                pipeline,
+                source,
+                layout,
+                &batch_days,
+                names_are_dates,
+                report.schema.as_deref(),
+            ),
             out,
             &layout.dir(out),
             &batch_days,
@@ -1161,25 +1254,25 @@ pub async fn ensure_tiles(
     Ok((stats, ignored))
 }
 
-/// Registers a folder of day-partitioned tile files as a table.
+/// Registers a folder of day-partitioned tile files as a table, with the columns
+/// `aliases` names ([`TileLayout::aliases`]; none for distinct-value tiles and roll-ups).
 pub async fn register_tiles(
     ctx: &SessionContext,
     out: &Location,
     dir: &StorePath,
     table: &str,
+    aliases: &[(String, String)],
 ) -> datafusion::error::Result<()> {
     let url = ListingTableUrl::parse(format!("{}{}/", root_url(out), dir.as_ref()))?;
     let options =
         tile_options().with_table_partition_cols(vec![("dt".to_string(), DataType::Utf8)]);
     // A tile folder's files all have one schema (its layout's): a table registered again
     // over the same folder keeps the schema it had rather than reading every footer.
-    let known = match ctx.table_provider(table).await {
-        Ok(t) => t
-            .downcast_ref::<ListingTable>()
+    let known = listing_of(ctx, table).await.and_then(|t| {
+        t.downcast_ref::<ListingTable>()
             .filter(|l| l.table_paths().iter().any(|p| p.as_str() == url.as_str()))
-            .map(datafusion::datasource::TableProvider::schema),
-        Err(_) => None,
-    };
+            .map(TableProvider::schema)
+    });
     let schema = match known {
         Some(s) if s.fields().len() > 1 => files_schema(&s),
         _ => match newest_file(out, dir).await? {
@@ -1193,7 +1286,26 @@ pub async fn register_tiles(
             None => options.infer_schema(&ctx.state(), &url).await?,
         },
     };
-    replace_table(ctx, table, vec![url], options, schema)
+    replace_table(ctx, table, vec![url], options, schema, aliases)
+}
+
+/// Name of the listing table under tile table `table` when `table` is a view adding
+/// aliases.
+fn files_table(table: &str) -> String {
+    format!("{table}__files")
+}
+
+/// The listing table that tile table `table` reads: `table` itself, or the one under it
+/// when it is a view adding aliases.
+pub async fn listing_of(ctx: &SessionContext, table: &str) -> Option<Arc<dyn TableProvider>> {
+    for name in [table.to_string(), files_table(table)] {
+        if let Ok(t) = ctx.table_provider(name.as_str()).await {
+            if t.downcast_ref::<ListingTable>().is_some() {
+                return Some(t);
+            }
+        }
+    }
+    None
 }
 
 /// Listing options of tile files (partition columns aside).
@@ -1218,19 +1330,47 @@ fn files_schema(
     ))
 }
 
-/// Registers `name` as a listing table over `urls`, in place of any table of that name.
+/// Registers `name` as a listing table over `urls`, in place of any table of that name;
+/// with `aliases`, as a view over that listing table (registered as [`files_table`]) that
+/// also shows each stored column under its alias names.
 fn replace_table(
     ctx: &SessionContext,
     name: &str,
     urls: Vec<ListingTableUrl>,
     options: ListingOptions,
     schema: datafusion::arrow::datatypes::SchemaRef,
+    aliases: &[(String, String)],
 ) -> datafusion::error::Result<()> {
     let config = ListingTableConfig::new_with_multi_paths(urls)
         .with_listing_options(options)
         .with_schema(schema);
+    let listing: Arc<dyn TableProvider> = Arc::new(ListingTable::try_new(config)?);
     let _ = ctx.deregister_table(name);
-    ctx.register_table(name, Arc::new(ListingTable::try_new(config)?))?;
+    if aliases.is_empty() {
+        ctx.register_table(name, listing)?;
+        return Ok(());
+    }
+    let files = files_table(name);
+    let _ = ctx.deregister_table(files.as_str());
+    ctx.register_table(files.as_str(), Arc::clone(&listing))?;
+    let column = |n: &str| Expr::Column(Column::new_unqualified(n));
+    let items = listing
+        .schema()
+        .fields()
+        .iter()
+        .map(|f| column(f.name()))
+        .chain(aliases.iter().map(|(n, stored)| column(stored).alias(n)))
+        .collect::<Vec<_>>();
+    // A view is inlined where a query names it (`LogicalPlanBuilder::scan`), so plans sent
+    // to a cluster hold only the listing table and a projection.
+    let plan = LogicalPlanBuilder::scan(
+        TableReference::bare(files.as_str()),
+        provider_as_source(listing),
+        None,
+    )?
+    .project(items)?
+    .build()?;
+    ctx.register_table(name, Arc::new(ViewTable::new(plan, None)))?;
     Ok(())
 }
 
@@ -1275,7 +1415,7 @@ async fn newest_file(
 
 /// Registers `scoped` as a table over only the `dt=` partitions `parts` of tile folder
 /// `dir`, without the partition column, with the schema of `table` (the whole folder,
-/// registered already). DataFusion 55 lists a partitioned table's whole folder for a
+/// registered already), with `aliases` as [`register_tiles`]. DataFusion 55 lists a partitioned table's whole folder for a
 /// filter such as `dt IN (...)`, so a daily build reading a few dozen partitions listed
 /// every tile file of the history, several times; this table lists only its partitions.
 pub async fn register_partitions(
@@ -1285,14 +1425,19 @@ pub async fn register_partitions(
     table: &str,
     scoped: &str,
     parts: &BTreeSet<NaiveDate>,
+    aliases: &[(String, String)],
 ) -> datafusion::error::Result<()> {
-    let schema = files_schema(&ctx.table_provider(table).await?.schema());
+    let whole = match listing_of(ctx, table).await {
+        Some(t) => t,
+        None => ctx.table_provider(table).await?,
+    };
+    let schema = files_schema(&whole.schema());
     let root = root_url(out);
     let urls = parts
         .iter()
         .map(|d| ListingTableUrl::parse(format!("{root}{}/dt={d}/", dir.as_ref())))
         .collect::<datafusion::error::Result<Vec<_>>>()?;
-    replace_table(ctx, scoped, urls, tile_options(), schema)
+    replace_table(ctx, scoped, urls, tile_options(), schema, aliases)
 }
 
 /// The tile layouts of every source that something reads.
@@ -1450,5 +1595,196 @@ pub fn tiled_snapshot_query(
         cutoff: naive.cutoff,
         reads: naive.reads,
         sql,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn pipeline(features: &str) -> Pipeline {
+        let text = format!(
+            "daymark: 1\nname: t\ntimezone: UTC\nkey: k\noutput: out\nsources:\n  s: {{ location: s, event_time: t }}\npopulation:\n  recent_activity: {{ source: s, within: 30d, filter: \"v > 0\" }}\nfeatures:\n{features}"
+        );
+        daymark_spec::load_str(&text, None).unwrap()
+    }
+
+    #[test]
+    fn columns_defined_alike_are_stored_once_and_shown_under_every_name() {
+        let p = pipeline(
+            "  - { name: n, source: s, agg: count, windows: [7d, 28d] }\n  - { name: m, source: s, agg: sum, expr: v, windows: [7d, 28d], fill: 0 }\n  - { name: f, source: s, agg: sum, expr: v, filter: \"w = 1\", window: 7d, fill: 0 }\n",
+        );
+        let l = layout(&p, &p.sources["s"]).unwrap();
+        // Features 0, 1 count every row (the population counts filtered ones), 2 and 3
+        // sum `v` over every row, 4 only over `w = 1`.
+        assert_eq!(
+            l.columns,
+            [
+                "COUNT(*) FILTER (WHERE (v > 0)) AS __pc",
+                "COUNT(*) AS __c0",
+                "SUM((v)) AS __s2",
+                "COUNT((v)) AS __n2",
+                "COUNT(*) FILTER (WHERE (w = 1)) AS __c4",
+                "SUM((v)) FILTER (WHERE (w = 1)) AS __s4",
+                "COUNT((v)) FILTER (WHERE (w = 1)) AS __n4",
+                "MAX(\"t\") AS __mev",
+            ]
+        );
+        let aliases: Vec<(&str, &str)> = l
+            .aliases
+            .iter()
+            .map(|(a, s)| (a.as_str(), s.as_str()))
+            .collect();
+        assert_eq!(
+            aliases,
+            [
+                ("__c1", "__c0"),
+                ("__c2", "__c0"),
+                ("__c3", "__c0"),
+                ("__s3", "__s2"),
+                ("__n3", "__n2"),
+            ]
+        );
+    }
+
+    #[test]
+    fn another_window_over_stored_columns_keeps_the_tiles() {
+        let one = pipeline("  - { name: m, source: s, agg: sum, expr: v, window: 7d, fill: 0 }\n");
+        let two = pipeline(
+            "  - { name: m, source: s, agg: sum, expr: v, windows: [7d, 91d], fill: 0 }\n",
+        );
+        let three = pipeline(
+            "  - { name: m, source: s, agg: mean, expr: v, windows: [7d, 91d], fill: 0 }\n",
+        );
+        let hash = |p: &Pipeline| layout(p, &p.sources["s"]).unwrap().hash;
+        assert_eq!(hash(&one), hash(&two));
+        // A mean sums the values as doubles: another column, so other tiles.
+        assert_ne!(hash(&two), hash(&three));
+    }
+
+    #[tokio::test]
+    async fn a_tile_table_shows_its_aliases_and_its_files_hold_each_column_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let part = dir.path().join("dt=2026-01-01");
+        std::fs::create_dir_all(&part).unwrap();
+        let ctx = SessionContext::new();
+        let df = ctx
+            .sql("SELECT CAST(1 AS BIGINT) AS __key, CAST(7 AS BIGINT) AS __c0")
+            .await
+            .unwrap();
+        df.write_parquet(
+            part.join("part-0.parquet").to_str().unwrap(),
+            datafusion::dataframe::DataFrameWriteOptions::new(),
+            None,
+        )
+        .await
+        .unwrap();
+        let out = daymark_store::resolve(dir.path().to_str().unwrap(), None).unwrap();
+        let aliases = vec![("__c1".to_string(), "__c0".to_string())];
+        register_tiles(&ctx, &out, &out.prefix, "t__tiles", &aliases)
+            .await
+            .unwrap();
+        let batches = ctx
+            .sql("SELECT __key, __c0, __c1, dt FROM t__tiles")
+            .await
+            .unwrap()
+            .collect()
+            .await
+            .unwrap();
+        let b = &batches[0];
+        let int = |i: usize| {
+            b.column(i)
+                .as_any()
+                .downcast_ref::<datafusion::arrow::array::Int64Array>()
+                .unwrap()
+                .value(0)
+        };
+        assert_eq!((b.num_rows(), int(0), int(1), int(2)), (1, 1, 7, 7));
+        // The listing table under the view has the files' columns only.
+        let listing = listing_of(&ctx, "t__tiles").await.unwrap();
+        let names: Vec<String> = listing
+            .schema()
+            .fields()
+            .iter()
+            .map(|f| f.name().clone())
+            .collect();
+        assert_eq!(names, ["__key", "__c0", "dt"]);
+        // A table over some partitions gets the same view.
+        let parts = BTreeSet::from([NaiveDate::from_ymd_opt(2026, 1, 1).unwrap()]);
+        register_partitions(&ctx, &out, &out.prefix, "t__tiles", "t@1", &parts, &aliases)
+            .await
+            .unwrap();
+        let n = ctx
+            .sql("SELECT SUM(__c1) FROM \"t@1\"")
+            .await
+            .unwrap()
+            .collect()
+            .await
+            .unwrap();
+        let v = n[0]
+            .column(0)
+            .as_any()
+            .downcast_ref::<datafusion::arrow::array::Int64Array>()
+            .unwrap()
+            .value(0);
+        assert_eq!(v, 7);
+    }
+
+    /// Event times after arrival: 0, 300 s exactly (within the tolerance), 300.001 s and
+    /// an hour (beyond it), and one before arrival. Counted the same whether the arrival
+    /// column has the event time's unit (raw values compared) or not (interval added).
+    #[tokio::test]
+    async fn rows_whose_event_time_passes_arrival_beyond_the_tolerance_are_counted() {
+        for unit in ["Microsecond", "Millisecond"] {
+            let dir = tempfile::tempdir().unwrap();
+            let part = dir.path().join("s/dt=2026-01-01");
+            std::fs::create_dir_all(&part).unwrap();
+            let ctx = crate::session::session(&Default::default()).unwrap();
+            let ts = |c: &str, u: &str| {
+                format!(
+                    "arrow_cast(CAST({c} AS TIMESTAMP), 'Timestamp({u}, Some(\"UTC\"))') AS {c}"
+                )
+            };
+            let sql = format!(
+                "SELECT CAST(k AS BIGINT) AS k, {}, {} FROM (VALUES \
+                 (1, '2026-01-01T12:00:00', '2026-01-01T12:00:00'), \
+                 (2, '2026-01-01T12:05:00', '2026-01-01T12:00:00'), \
+                 (3, '2026-01-01T12:05:00.001', '2026-01-01T12:00:00'), \
+                 (4, '2026-01-01T13:00:00', '2026-01-01T12:00:00'), \
+                 (5, '2026-01-01T11:00:00', '2026-01-01T12:00:00')) AS v(k, t, a)",
+                ts("t", "Microsecond"),
+                ts("a", unit)
+            );
+            ctx.sql(&sql)
+                .await
+                .unwrap()
+                .write_parquet(
+                    part.join("part-0.parquet").to_str().unwrap(),
+                    datafusion::dataframe::DataFrameWriteOptions::new(),
+                    None,
+                )
+                .await
+                .unwrap();
+            let text = format!(
+                "daymark: 1\nname: t\ntimezone: UTC\nkey: k\noutput: {out}\nsources:\n  s: {{ location: {src}, event_time: t, arrival_time: a }}\npopulation:\n  recent_activity: {{ source: s, within: 30d }}\nfeatures:\n  - {{ name: n, source: s, agg: count, window: 7d }}\n",
+                out = dir.path().join("out").display(),
+                src = dir.path().join("s").display(),
+            );
+            let p = daymark_spec::load_str(&text, None).unwrap();
+            let reports = crate::inspect_sources(&p).await;
+            crate::register_sources(&ctx, &p, &reports).await.unwrap();
+            let out =
+                daymark_store::resolve(dir.path().join("out").to_str().unwrap(), None).unwrap();
+            let l = layout(&p, &p.sources["s"]).unwrap();
+            let day = NaiveDate::from_ymd_opt(2026, 1, 1).unwrap();
+            let (_, ignored) =
+                ensure_tiles(&ctx, &p, &reports["s"], &l, &out, &BTreeSet::from([day]))
+                    .await
+                    .unwrap();
+            assert_eq!(
+                ignored[&day].event_after_arrival_rows, 2,
+                "arrival in {unit}s"
+            );
+        }
     }
 }

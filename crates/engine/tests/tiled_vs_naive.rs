@@ -289,13 +289,13 @@ async fn range_under_memory_limit(
         .map(|d| format!("dt={d}/"))
         .collect();
     assert!(pieces.scoped && !wanted.is_empty());
-    let scoped = ctx
-        .table_provider(daymark_engine::rollups::scoped_table(
-            &ls["plays"].table(),
-            last,
-        ))
-        .await
-        .unwrap();
+    // (Under the view that shows the tiles' shared columns under every feature's name.)
+    let scoped = daymark_engine::tiles::listing_of(
+        &ctx,
+        &daymark_engine::rollups::scoped_table(&ls["plays"].table(), last),
+    )
+    .await
+    .unwrap();
     let listing = scoped
         .downcast_ref::<datafusion::datasource::listing::ListingTable>()
         .unwrap();
