@@ -243,6 +243,9 @@ pub fn columns(
         }
         _ => {}
     }
+    // Partials read by their stored name, so that features reading the same tile column
+    // get the same definition here too ([`stored_once`]).
+    let st = |name: String| layout.stored(&name).to_string();
     for (i, f) in pipeline.features.iter().enumerate() {
         let FeatureDef::Aggregate { source, agg, .. } = &f.def else {
             continue;
@@ -250,21 +253,26 @@ pub fn columns(
         if *source != layout.source || *agg == Aggregation::CountDistinct {
             continue;
         }
-        let rows = format!(" FILTER (WHERE __c{i} > 0)");
-        cols.push((format!("__c{i}"), format!("SUM(__c{i})")));
+        let count = st(format!("__c{i}"));
+        let rows = format!(" FILTER (WHERE {count} > 0)");
+        cols.push((format!("__c{i}"), format!("SUM({count})")));
         match agg {
             Aggregation::Sum | Aggregation::Mean => {
-                let sum = format!("__s{i}");
+                let sum = st(format!("__s{i}"));
                 let agg = if float_sums.contains(&sum) {
                     exact_sum(&sum, "")
                 } else {
                     format!("SUM({sum})")
                 };
-                cols.push((sum, agg));
-                cols.push((format!("__n{i}"), format!("SUM(__n{i})")));
+                cols.push((format!("__s{i}"), agg));
+                cols.push((format!("__n{i}"), format!("SUM({})", st(format!("__n{i}")))));
             }
-            Aggregation::Min => cols.push((format!("__m{i}"), format!("MIN(__m{i})"))),
-            Aggregation::Max => cols.push((format!("__m{i}"), format!("MAX(__m{i})"))),
+            Aggregation::Min => {
+                cols.push((format!("__m{i}"), format!("MIN({})", st(format!("__m{i}")))))
+            }
+            Aggregation::Max => {
+                cols.push((format!("__m{i}"), format!("MAX({})", st(format!("__m{i}")))))
+            }
             Aggregation::First | Aggregation::Last => {
                 let (func, order) = crate::tiles::first_last_of_partials(*agg, i, has_arrival);
                 let mut names = vec![format!("__v{i}"), format!("__vt{i}")];
@@ -288,6 +296,25 @@ pub fn columns(
         }
     }
     cols
+}
+
+/// [`columns`] split into those defined first, kept in roll-up files and combined by
+/// piece queries, and the rest as (name, column defined the same way): the windows of a
+/// feature, and features counting the same rows, share one roll-up column as they share
+/// one tile column.
+pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Vec<(String, String)>) {
+    let mut first: BTreeMap<String, String> = BTreeMap::new();
+    let (mut kept, mut aliases) = (Vec::new(), Vec::new());
+    for (name, def) in cols {
+        match first.get(&def) {
+            Some(stored) => aliases.push((name, stored.clone())),
+            None => {
+                first.insert(def.clone(), name.clone());
+                kept.push((name, def));
+            }
+        }
+    }
+    (kept, aliases)
 }
 
 /// [`columns`] as `agg AS name`, for rows grouped by event day as well as by key (day
@@ -581,7 +608,7 @@ async fn build(
             firsts.iter().map(|d| date(*d)).collect::<Vec<_>>().join(", ")
         )
         };
-    let cols = columns(pipeline, layout, float_sums);
+    let (cols, _) = stored_once(columns(pipeline, layout, float_sums));
     let sql = rollup_sql(&cols, &rows(&layout.table()), "__part");
     crate::tiles::write_split(
         ctx,
@@ -651,8 +678,8 @@ async fn register_tables(
     level: Option<Level>,
     day: NaiveDate,
 ) -> Result<(), BuildError> {
-    // Roll-ups hold every column under its own name (they are built through the day
-    // tiles' aliases); only the day tiles need theirs.
+    // Roll-ups hold each partial once too ([`stored_once`]) and are read by those names
+    // only; the day tiles need their aliases for the backfill's queries.
     let mut tables = vec![match level {
         None => (layout.dir(out), layout.table(), layout.aliases.as_slice()),
         Some(l) => (dir(layout, pipeline, out, l), table(layout, l), &[][..]),
@@ -1053,7 +1080,7 @@ impl Current<'_> {
         }
         let found = self.spans(Level::Month, &months).await?;
         register_tables(ctx, pipeline, out, layout, Some(Level::Month), self.day).await?;
-        let cols = columns(pipeline, layout, &float_sums(ctx, layout).await);
+        let (cols, _) = stored_once(columns(pipeline, layout, &float_sums(ctx, layout).await));
         let names = cols
             .iter()
             .map(|(n, _)| n.as_str())
@@ -1103,7 +1130,7 @@ impl Current<'_> {
             (self.ctx, self.pipeline, self.report, self.layout, self.out);
         let parts: BTreeSet<NaiveDate> = span_partitions(report, span).collect();
         self.day_tiles(parts.iter().copied()).await?;
-        let cols = columns(pipeline, layout, &float_sums(ctx, layout).await);
+        let (cols, _) = stored_once(columns(pipeline, layout, &float_sums(ctx, layout).await));
         let rows = format!(
             "SELECT *, {} AS __part FROM {} WHERE {} AND __t <= {}",
             date(span.first),
@@ -1204,7 +1231,8 @@ fn spans_of(pieces: &Pieces, level: Level) -> Vec<NaiveDate> {
 }
 
 /// The rows of one source's pieces for snapshot `day`: `__key`, `__lo` (the piece's first
-/// day), then the [`columns`]. Only rows with a key unless `null_keys`.
+/// day), then the [`columns`] (each partial combined once, shown under every name). Only
+/// rows with a key unless `null_keys`.
 pub fn pieces_sql(
     pipeline: &Pipeline,
     layout: &TileLayout,
@@ -1213,7 +1241,7 @@ pub fn pieces_sql(
     knowledge: Knowledge,
     null_keys: bool,
 ) -> String {
-    let cols = columns(pipeline, layout, &pieces.float_sums);
+    let (cols, aliases) = stored_once(columns(pipeline, layout, &pieces.float_sums));
     let keyed = if null_keys {
         "TRUE"
     } else {
@@ -1243,7 +1271,15 @@ pub fn pieces_sql(
             ));
         }
     }
-    parts.join(" UNION ALL ")
+    let all = parts.join(" UNION ALL ");
+    if aliases.is_empty() {
+        return all;
+    }
+    let shown: Vec<String> = aliases
+        .iter()
+        .map(|(alias, stored)| format!("{stored} AS {alias}"))
+        .collect();
+    format!("SELECT *, {} FROM ({all})", shown.join(", "))
 }
 
 /// The distinct values of feature `feature` in one source's pieces: `__key`, `__lo`,
@@ -1379,6 +1415,41 @@ async fn register_scoped(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Counts and active days over two windows: the count partial is combined once for
+    /// all four features, active days once for both windows.
+    #[test]
+    fn roll_up_partials_defined_alike_are_kept_once() {
+        let text = "daymark: 1\nname: t\ntimezone: UTC\nkey: k\noutput: out\nsources:\n  s: { location: s, event_time: t }\npopulation:\n  recent_activity: { source: s, within: 30d }\nfeatures:\n  - { name: n, source: s, agg: count, windows: [7d, 28d] }\n  - { name: a, source: s, agg: active_days, windows: [7d, 28d] }\n";
+        let p = daymark_spec::load_str(text, None).unwrap();
+        let layout = crate::tiles::layout(&p, &p.sources["s"]).unwrap();
+        let (kept, aliases) = stored_once(columns(&p, &layout, &BTreeSet::new()));
+        let kept: Vec<String> = kept.iter().map(|(n, a)| format!("{a} AS {n}")).collect();
+        assert_eq!(
+            kept,
+            [
+                "SUM(__rows) AS __rows",
+                "SUM(__ahead) AS __ahead",
+                "MAX(__mev) AS __mev",
+                "SUM(__pc) AS __pc",
+                "COUNT(DISTINCT __t) FILTER (WHERE __pc > 0) AS __ad2",
+            ]
+        );
+        let aliases: Vec<(&str, &str)> = aliases
+            .iter()
+            .map(|(a, s)| (a.as_str(), s.as_str()))
+            .collect();
+        assert_eq!(
+            aliases,
+            [
+                ("__c0", "__pc"),
+                ("__c1", "__pc"),
+                ("__c2", "__pc"),
+                ("__c3", "__pc"),
+                ("__ad3", "__ad2"),
+            ]
+        );
+    }
 
     fn d(s: &str) -> NaiveDate {
         s.parse().unwrap()

@@ -74,6 +74,13 @@ impl TileLayout {
             &["tiles", &self.source, &format!("{}-d{feature}", self.hash)],
         )
     }
+    /// The stored column that column `name` of the main tiles shows ([`Self::aliases`]).
+    pub fn stored<'a>(&'a self, name: &'a str) -> &'a str {
+        self.aliases
+            .iter()
+            .find(|(alias, _)| alias == name)
+            .map_or(name, |(_, stored)| stored.as_str())
+    }
     /// Table name of the main tiles.
     pub fn table(&self) -> String {
         format!("{}__tiles", self.source)
