@@ -145,26 +145,31 @@ const BYTES_PER_WORK_ROW: u64 = 280;
 /// The same for the windowed-total query ([`direct_features`]), measured when it ran
 /// DataFusion's non-streaming window operator, which held its whole input, a copy of it
 /// and the results outside the memory pool (peak 13.4 GB over 16M-row queries on the 100M
-/// world, docs/benchmarks.md seventh measurement). The grouping that replaced it peaks
-/// lower (1.1 GB against 1.4 GB on the 10M world, fifteenth measurement); the constant was
-/// not measured again.
+/// world, docs/benchmarks.md seventh measurement). The grouping that replaced it holds far
+/// less (twenty-first measurement: about 62 bytes a row between one and two queries over
+/// the same 20M rows); the memory-limit target was verified with this figure, so ranges
+/// under a limit are still sized with it.
 const DIRECT_BYTES_PER_WORK_ROW: u64 = 840;
+/// Working-set rows per windowed-total query without a memory limit. On the benchmark
+/// world one query over its 20M rows peaked at 1.55 GB resident, the whole process
+/// included, and took 7.9-8.2 s against 9.6-9.9 s for four queries of 5.3M rows
+/// (docs/benchmarks.md, twenty-first measurement): so about 1.9 GB.
+const DIRECT_WORK_ROWS_PER_QUERY: u64 = 24_000_000;
 
 /// Working-set rows per backfill query: as the session was told, else what its memory
-/// limit holds, at most [`WORK_ROWS_PER_QUERY`] (scaled down for the windowed-total query
-/// when `direct`).
+/// limit holds, at most [`WORK_ROWS_PER_QUERY`] ([`DIRECT_WORK_ROWS_PER_QUERY`] for the
+/// windowed-total query, when `direct`).
 fn work_rows_per_query(ctx: &SessionContext, direct: bool) -> u64 {
     use datafusion::execution::memory_pool::MemoryLimit;
     let config = ctx.state().config().clone();
     if let Some(n) = config.get_extension::<crate::session::BackfillRowsPerQuery>() {
         return n.0;
     }
-    let per_row = if direct {
-        DIRECT_BYTES_PER_WORK_ROW
+    let (per_row, most) = if direct {
+        (DIRECT_BYTES_PER_WORK_ROW, DIRECT_WORK_ROWS_PER_QUERY)
     } else {
-        BYTES_PER_WORK_ROW
+        (BYTES_PER_WORK_ROW, WORK_ROWS_PER_QUERY)
     };
-    let most = WORK_ROWS_PER_QUERY * BYTES_PER_WORK_ROW / per_row;
     match ctx.runtime_env().memory_pool.memory_limit() {
         MemoryLimit::Finite(limit) => (limit as u64 / per_row).clamp(1, most),
         _ => most,

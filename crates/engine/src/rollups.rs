@@ -298,11 +298,14 @@ pub fn columns(
     cols
 }
 
+/// Columns shown under another name, as (name, stored column).
+pub type Aliases = Vec<(String, String)>;
+
 /// [`columns`] split into those defined first, kept in roll-up files and combined by
 /// piece queries, and the rest as (name, column defined the same way): the windows of a
 /// feature, and features counting the same rows, share one roll-up column as they share
 /// one tile column.
-pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Vec<(String, String)>) {
+pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Aliases) {
     let mut first: BTreeMap<String, String> = BTreeMap::new();
     let (mut kept, mut aliases) = (Vec::new(), Vec::new());
     for (name, def) in cols {
