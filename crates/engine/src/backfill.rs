@@ -146,7 +146,7 @@ const BYTES_PER_WORK_ROW: u64 = 280;
 /// DataFusion's non-streaming window operator, which held its whole input, a copy of it
 /// and the results outside the memory pool (peak 13.4 GB over 16M-row queries on the 100M
 /// world, docs/benchmarks.md seventh measurement). The grouping that replaced it holds far
-/// less (twenty-first measurement: about 62 bytes a row between one and two queries over
+/// less (twenty-first measurement: about 64 bytes a row between one and two queries over
 /// the same 20M rows); the memory-limit target was verified with this figure, so ranges
 /// under a limit are still sized with it.
 const DIRECT_BYTES_PER_WORK_ROW: u64 = 840;
