@@ -34,7 +34,7 @@
 use crate::build::{child, BuildError};
 use crate::sources::SourceReport;
 use crate::sql::{ident, literal, KnowledgeOverride};
-use crate::tiles::{Ignored, TileLayout, TileStats};
+use crate::tiles::{stored_once, Ignored, TileLayout, TileStats};
 use chrono::{Datelike, Duration, NaiveDate, Weekday};
 use datafusion::prelude::SessionContext;
 use daymark_spec::hash::hash_value;
@@ -296,28 +296,6 @@ pub fn columns(
         }
     }
     cols
-}
-
-/// Columns shown under another name, as (name, stored column).
-pub type Aliases = Vec<(String, String)>;
-
-/// [`columns`] split into those defined first, kept in roll-up files and combined by
-/// piece queries, and the rest as (name, column defined the same way): the windows of a
-/// feature, and features counting the same rows, share one roll-up column as they share
-/// one tile column.
-pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Aliases) {
-    let mut first: BTreeMap<String, String> = BTreeMap::new();
-    let (mut kept, mut aliases) = (Vec::new(), Vec::new());
-    for (name, def) in cols {
-        match first.get(&def) {
-            Some(stored) => aliases.push((name, stored.clone())),
-            None => {
-                first.insert(def.clone(), name.clone());
-                kept.push((name, def));
-            }
-        }
-    }
-    (kept, aliases)
 }
 
 /// [`columns`] as `agg AS name`, for rows grouped by event day as well as by key (day

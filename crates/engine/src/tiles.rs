@@ -57,7 +57,7 @@ pub struct TileLayout {
     /// hold each definition once and the tile tables show it under every name
     /// ([`register_tiles`]). (Each window of a feature used to get its own copy: the
     /// benchmark pipeline's tiles held nine identical `COUNT(*)` columns.)
-    pub aliases: Vec<(String, String)>,
+    pub aliases: Aliases,
     /// Distinct-value tiles: (feature index, value expression, filter).
     pub distinct: Vec<(usize, String, Option<String>)>,
 }
@@ -98,25 +98,35 @@ fn cond(filter: &Option<String>) -> String {
     }
 }
 
-/// The SELECT items of a main tile, one per distinct definition: a column defined as an
-/// earlier one is an alias of it.
-#[derive(Default)]
-struct Columns {
-    items: Vec<String>,
-    first: BTreeMap<String, String>,
-    aliases: Vec<(String, String)>,
-}
+/// Columns shown under another name, as (name, stored column).
+pub type Aliases = Vec<(String, String)>;
 
-impl Columns {
-    /// Adds column `name` defined as `def` (an aggregate over tile rows).
-    fn push(&mut self, def: String, name: String) {
-        match self.first.get(&def) {
-            Some(stored) => self.aliases.push((name, stored.clone())),
+/// Columns `cols` (name, definition) split into those defined first, which are stored,
+/// and the rest as (name, the stored column defined the same way): the windows of a
+/// feature, and features counting the same rows, share one column.
+pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Aliases) {
+    let mut first: BTreeMap<String, String> = BTreeMap::new();
+    let (mut kept, mut aliases) = (Vec::new(), Vec::new());
+    for (name, def) in cols {
+        match first.get(&def) {
+            Some(stored) => aliases.push((name, stored.clone())),
             None => {
-                self.items.push(format!("{def} AS {name}"));
-                self.first.insert(def, name);
+                first.insert(def.clone(), name.clone());
+                kept.push((name, def));
             }
         }
+    }
+    (kept, aliases)
+}
+
+/// The columns of a main tile as they are declared: (name, aggregate over tile rows).
+#[derive(Default)]
+struct Columns(Vec<(String, String)>);
+
+impl Columns {
+    /// Adds column `name` defined as `def`.
+    fn push(&mut self, def: String, name: String) {
+        self.0.push((name, def));
     }
 }
 
@@ -221,7 +231,7 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
             _ => {}
         }
     }
-    if columns.items.is_empty() && distinct.is_empty() {
+    if columns.0.is_empty() && distinct.is_empty() {
         return None;
     }
     // Provenance (crate::provenance): the latest event and arrival time of each tile row.
@@ -229,6 +239,11 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
     if let Some(a) = &arr {
         columns.push(format!("MAX({a})"), "__mar".to_string());
     }
+    let (stored, aliases) = stored_once(columns.0);
+    let columns: Vec<String> = stored
+        .into_iter()
+        .map(|(name, def)| format!("{def} AS {name}"))
+        .collect();
     let hash = hash_value(&json!({
         "format": TILE_FORMAT,
         "source": serde_json::to_value(&source.spec).unwrap_or_default(),
@@ -237,15 +252,15 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
         "cutoff_time": pipeline.file.cutoff_time,
         // Not the aliases: a feature that only adds another window over a column the
         // tiles already hold reuses them.
-        "columns": columns.items,
+        "columns": columns,
         "distinct": distinct.iter().map(|(i, e, f)| json!([i, e, f])).collect::<Vec<_>>(),
     }))[..16]
         .to_string();
     Some(TileLayout {
         source: source.name.clone(),
         hash,
-        columns: columns.items,
-        aliases: columns.aliases,
+        columns,
+        aliases,
         distinct,
     })
 }
@@ -1669,6 +1684,21 @@ mod tests {
         assert_ne!(hash(&two), hash(&three));
     }
 
+    /// The first row of `sql`'s result, every column an Int64.
+    async fn first_row(ctx: &SessionContext, sql: &str) -> Vec<i64> {
+        let batches = ctx.sql(sql).await.unwrap().collect().await.unwrap();
+        let b = &batches[0];
+        (0..b.num_columns())
+            .map(|i| {
+                b.column(i)
+                    .as_any()
+                    .downcast_ref::<datafusion::arrow::array::Int64Array>()
+                    .unwrap()
+                    .value(0)
+            })
+            .collect()
+    }
+
     #[tokio::test]
     async fn a_tile_table_shows_its_aliases_and_its_files_hold_each_column_once() {
         let dir = tempfile::tempdir().unwrap();
@@ -1691,22 +1721,12 @@ mod tests {
         register_tiles(&ctx, &out, &out.prefix, "t__tiles", &aliases)
             .await
             .unwrap();
-        let batches = ctx
-            .sql("SELECT __key, __c0, __c1, dt FROM t__tiles")
-            .await
-            .unwrap()
-            .collect()
-            .await
-            .unwrap();
-        let b = &batches[0];
-        let int = |i: usize| {
-            b.column(i)
-                .as_any()
-                .downcast_ref::<datafusion::arrow::array::Int64Array>()
-                .unwrap()
-                .value(0)
-        };
-        assert_eq!((b.num_rows(), int(0), int(1), int(2)), (1, 1, 7, 7));
+        let row = first_row(
+            &ctx,
+            "SELECT COUNT(*), MIN(__key), MIN(__c0), MIN(__c1) FROM t__tiles WHERE dt = '2026-01-01'",
+        )
+        .await;
+        assert_eq!(row, [1, 1, 7, 7]);
         // The listing table under the view has the files' columns only.
         let listing = listing_of(&ctx, "t__tiles").await.unwrap();
         let names: Vec<String> = listing
@@ -1721,20 +1741,7 @@ mod tests {
         register_partitions(&ctx, &out, &out.prefix, "t__tiles", "t@1", &parts, &aliases)
             .await
             .unwrap();
-        let n = ctx
-            .sql("SELECT SUM(__c1) FROM \"t@1\"")
-            .await
-            .unwrap()
-            .collect()
-            .await
-            .unwrap();
-        let v = n[0]
-            .column(0)
-            .as_any()
-            .downcast_ref::<datafusion::arrow::array::Int64Array>()
-            .unwrap()
-            .value(0);
-        assert_eq!(v, 7);
+        assert_eq!(first_row(&ctx, "SELECT SUM(__c1) FROM \"t@1\"").await, [7]);
     }
 
     /// Event times after arrival: 0, 300 s exactly (within the tolerance), 300.001 s and
