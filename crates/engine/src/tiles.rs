@@ -119,22 +119,12 @@ pub fn stored_once(cols: Vec<(String, String)>) -> (Vec<(String, String)>, Alias
     (kept, aliases)
 }
 
-/// The columns of a main tile as they are declared: (name, aggregate over tile rows).
-#[derive(Default)]
-struct Columns(Vec<(String, String)>);
-
-impl Columns {
-    /// Adds column `name` defined as `def`.
-    fn push(&mut self, def: String, name: String) {
-        self.0.push((name, def));
-    }
-}
-
 /// The tile layout of `source`, or `None` if no feature or population reads it.
 pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
-    let mut columns = Columns::default();
+    // As declared: (name, aggregate over tile rows).
+    let mut columns: Vec<(String, String)> = Vec::new();
     let mut distinct = Vec::new();
     match &pipeline.population {
         Population::State(s) if s.source == source.name => {
@@ -144,23 +134,23 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
                 .flatten()
                 .collect::<Vec<_>>()
                 .join(", ");
-            columns.push(
-                format!("last_value({col} ORDER BY {order})"),
+            columns.push((
                 "__ps".to_string(),
-            );
-            columns.push(
-                format!("last_value({ev} ORDER BY {order})"),
+                format!("last_value({col} ORDER BY {order})"),
+            ));
+            columns.push((
                 "__pt".to_string(),
-            );
+                format!("last_value({ev} ORDER BY {order})"),
+            ));
             if let Some(a) = &arr {
-                columns.push(
-                    format!("last_value({a} ORDER BY {order})"),
+                columns.push((
                     "__pa".to_string(),
-                );
+                    format!("last_value({a} ORDER BY {order})"),
+                ));
             }
         }
         Population::RecentActivity(r) if r.source == source.name => {
-            columns.push(format!("COUNT(*){}", cond(&r.filter)), "__pc".to_string());
+            columns.push(("__pc".to_string(), format!("COUNT(*){}", cond(&r.filter))));
         }
         _ => {}
     }
@@ -185,22 +175,22 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
             .unwrap_or_default();
         match agg {
             Aggregation::Count if !e.is_empty() => {
-                columns.push(format!("COUNT({e}){only}"), format!("__c{i}"))
+                columns.push((format!("__c{i}"), format!("COUNT({e}){only}")))
             }
-            _ => columns.push(format!("COUNT(*){only}"), format!("__c{i}")),
+            _ => columns.push((format!("__c{i}"), format!("COUNT(*){only}"))),
         }
         match agg {
             Aggregation::Sum => {
-                columns.push(format!("SUM({e}){only}"), format!("__s{i}"));
+                columns.push((format!("__s{i}"), format!("SUM({e}){only}")));
                 // Non-null values summed: tells an empty sum (NULL) from a zero one.
-                columns.push(format!("COUNT({e}){only}"), format!("__n{i}"));
+                columns.push((format!("__n{i}"), format!("COUNT({e}){only}")));
             }
             Aggregation::Mean => {
-                columns.push(format!("SUM(CAST({e} AS DOUBLE)){only}"), format!("__s{i}"));
-                columns.push(format!("COUNT({e}){only}"), format!("__n{i}"));
+                columns.push((format!("__s{i}"), format!("SUM(CAST({e} AS DOUBLE)){only}")));
+                columns.push((format!("__n{i}"), format!("COUNT({e}){only}")));
             }
-            Aggregation::Min => columns.push(format!("MIN({e}){only}"), format!("__m{i}")),
-            Aggregation::Max => columns.push(format!("MAX({e}){only}"), format!("__m{i}")),
+            Aggregation::Min => columns.push((format!("__m{i}"), format!("MIN({e}){only}"))),
+            Aggregation::Max => columns.push((format!("__m{i}"), format!("MAX({e}){only}"))),
             Aggregation::First | Aggregation::Last => {
                 let func = if *agg == Aggregation::First {
                     "first_value"
@@ -212,34 +202,34 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
                     .flatten()
                     .collect::<Vec<_>>()
                     .join(", ");
-                columns.push(
-                    format!("{func}({e} ORDER BY {order}){only}"),
+                columns.push((
                     format!("__v{i}"),
-                );
-                columns.push(
-                    format!("{func}({ev} ORDER BY {order}){only}"),
+                    format!("{func}({e} ORDER BY {order}){only}"),
+                ));
+                columns.push((
                     format!("__vt{i}"),
-                );
+                    format!("{func}({ev} ORDER BY {order}){only}"),
+                ));
                 if let Some(a) = &arr {
-                    columns.push(
-                        format!("{func}({a} ORDER BY {order}){only}"),
+                    columns.push((
                         format!("__va{i}"),
-                    );
+                        format!("{func}({a} ORDER BY {order}){only}"),
+                    ));
                 }
             }
             Aggregation::CountDistinct => distinct.push((i, e.clone(), filter.clone())),
             _ => {}
         }
     }
-    if columns.0.is_empty() && distinct.is_empty() {
+    if columns.is_empty() && distinct.is_empty() {
         return None;
     }
     // Provenance (crate::provenance): the latest event and arrival time of each tile row.
-    columns.push(format!("MAX({ev})"), "__mev".to_string());
+    columns.push(("__mev".to_string(), format!("MAX({ev})")));
     if let Some(a) = &arr {
-        columns.push(format!("MAX({a})"), "__mar".to_string());
+        columns.push(("__mar".to_string(), format!("MAX({a})")));
     }
-    let (stored, aliases) = stored_once(columns.0);
+    let (stored, aliases) = stored_once(columns);
     let columns: Vec<String> = stored
         .into_iter()
         .map(|(name, def)| format!("{def} AS {name}"))
