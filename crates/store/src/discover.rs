@@ -80,15 +80,26 @@ impl Listing {
 
 /// Lists the day partitions of a source at `loc`.
 pub async fn list_days(loc: &Location, day_partition: &str) -> Result<Listing, DiscoverError> {
-    let metas: Vec<object_store::ObjectMeta> = loc
-        .store
-        .list(Some(&loc.prefix))
-        .try_collect()
-        .await
-        .map_err(|e| DiscoverError::List {
-            location: loc.display(),
-            source: e,
-        })?;
+    let listed = match &loc.local_dir {
+        // A local folder: the same entries as the store's listing, with a third of the
+        // file system calls (see `local_listing.rs`).
+        Some(dir) => {
+            let (dir, prefix) = (dir.clone(), loc.prefix.clone());
+            tokio::task::spawn_blocking(move || crate::local_listing::list_local(&dir, &prefix))
+                .await
+                .unwrap_or_else(|e| {
+                    Err(object_store::Error::Generic {
+                        store: "LocalFileSystem",
+                        source: Box::new(e),
+                    })
+                })
+        }
+        None => loc.store.list(Some(&loc.prefix)).try_collect().await,
+    };
+    let metas: Vec<object_store::ObjectMeta> = listed.map_err(|e| DiscoverError::List {
+        location: loc.display(),
+        source: e,
+    })?;
     let mut listing = Listing::default();
     let prefix_parts = loc.prefix.parts().count();
     let wanted = format!("{day_partition}=");

@@ -4,6 +4,7 @@
 
 pub mod discover;
 pub mod footer_cache;
+mod local_listing;
 pub mod location;
 
 pub use discover::{
