@@ -1,5 +1,35 @@
 //! The `daymark` command line.
 
+/// `println!` and `print!` that do not panic when standard output is a closed pipe
+/// (`daymark ... | head`): the text is dropped and the command goes on with its work, which
+/// ends as it would have. Other write errors are reported on standard error. (Rust's own
+/// macros panic on any write error.) Defined before the modules so they all use them.
+macro_rules! println {
+    () => {
+        $crate::write_out(format_args!("\n"))
+    };
+    ($($arg:tt)*) => {
+        $crate::write_out(format_args!("{}\n", format_args!($($arg)*)))
+    };
+}
+
+/// See [`println!`].
+macro_rules! print {
+    ($($arg:tt)*) => {
+        $crate::write_out(format_args!($($arg)*))
+    };
+}
+
+/// Writes to standard output for [`println!`] and [`print!`].
+fn write_out(text: std::fmt::Arguments) {
+    use std::io::Write;
+    if let Err(e) = std::io::stdout().lock().write_fmt(text) {
+        if e.kind() != std::io::ErrorKind::BrokenPipe {
+            eprintln!("daymark: cannot write to standard output: {e}");
+        }
+    }
+}
+
 mod audit_cmd;
 mod commands;
 mod export_cmd;

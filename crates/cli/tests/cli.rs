@@ -472,3 +472,20 @@ fn a_dirty_world_names_the_unreadable_file() {
         "{stderr}"
     );
 }
+
+/// Standard output closed before the command writes (`daymark ... | head` once `head` has
+/// gone): no panic, the command ends as it would have. Rust's own `println!` panics here.
+#[test]
+fn a_closed_standard_output_is_not_a_panic() {
+    let (reader, writer) = std::io::pipe().unwrap();
+    drop(reader);
+    let out = daymark()
+        .arg("schema")
+        .stdout(writer)
+        .stderr(std::process::Stdio::piped())
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(!stderr.contains("panicked"), "{stderr}");
+    assert_eq!(out.status.code(), Some(0), "{stderr}");
+}
