@@ -75,8 +75,9 @@ pub async fn inspect_sources_with(
     pipeline: &Pipeline,
     cache: Option<&Location>,
 ) -> BTreeMap<String, SourceReport> {
-    let mut out = BTreeMap::new();
-    for (name, src) in &pipeline.sources {
+    // Sources side by side: listing a local folder runs on a blocking thread, so two
+    // sources list on two cores.
+    let each = pipeline.sources.iter().map(|(name, src)| async move {
         let path = format!("sources.{name}.location");
         let mut report = SourceReport {
             name: name.clone(),
@@ -138,9 +139,9 @@ pub async fn inspect_sources_with(
                 report.location = Some(loc);
             }
         }
-        out.insert(name.clone(), report);
-    }
-    out
+        (name.clone(), report)
+    });
+    futures::future::join_all(each).await.into_iter().collect()
 }
 
 /// The schemas found, for [`crate::check::check_against_schemas`].
