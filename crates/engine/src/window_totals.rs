@@ -468,21 +468,140 @@ struct TotalOutput {
     out: DataType,
 }
 
-/// The rows of one key.
+/// The rows of a grouping, in the order they arrived, each with its key's group index.
+/// (Rows were pushed to one set of vectors per key before: three scattered appends, and
+/// the vectors' regrowth, per row made that about 285 ns a row, 1.8 s of compute in the
+/// benchmark's backfill: docs/benchmarks.md, twenty-second measurement. Appending here is
+/// sequential; the rows are put in key order once, when a key's totals are computed.)
 #[derive(Debug, Default)]
-struct KeyRows {
+struct Arrived {
+    /// Group index of each tile row.
+    group: Vec<u32>,
     tn: Vec<i64>,
     vn: Vec<i64>,
     /// `slots` values per tile row, row after row ([`NULL_X`] for NULL).
     x: Vec<i128>,
+    /// Group index of each span row.
+    span_group: Vec<u32>,
     spans: Vec<(i64, i64)>,
 }
 
-impl KeyRows {
+impl Arrived {
     fn bytes(&self) -> usize {
-        (self.tn.capacity() + self.vn.capacity()) * 8
+        (self.group.capacity() + self.span_group.capacity()) * 4
+            + (self.tn.capacity() + self.vn.capacity()) * 8
             + self.x.capacity() * 16
             + self.spans.capacity() * 16
+    }
+
+    /// The indices of `of` (group indices) below `n`, grouped by group, in arrival order
+    /// within a group (a counting sort), with each group's first position: group `g`'s
+    /// items are `order[starts[g]..starts[g + 1]]`.
+    fn by_group(of: &[u32], n: usize) -> (Vec<usize>, Vec<u32>) {
+        let mut starts = vec![0usize; n + 1];
+        for &g in of {
+            if (g as usize) < n {
+                starts[g as usize + 1] += 1;
+            }
+        }
+        for g in 0..n {
+            starts[g + 1] += starts[g];
+        }
+        let mut next = starts.clone();
+        let mut order = vec![0u32; starts[n]];
+        for (i, &g) in of.iter().enumerate() {
+            let g = g as usize;
+            if g < n {
+                order[next[g]] = i as u32;
+                next[g] += 1;
+            }
+        }
+        (starts, order)
+    }
+
+    /// Takes the rows of groups `0..n` out, grouped; the rows of later groups stay, their
+    /// group indices lowered by `n` (as DataFusion renumbers groups after emitting some).
+    fn take(&mut self, n: usize, slots: usize) -> Grouped {
+        let (starts, order) = Self::by_group(&self.group, n);
+        let (span_starts, span_order) = Self::by_group(&self.span_group, n);
+        let kept_rows = self.group.len() - order.len();
+        let kept_spans = self.span_group.len() - span_order.len();
+        let all = std::mem::take(self);
+        if kept_rows > 0 || kept_spans > 0 {
+            for (i, &g) in all.group.iter().enumerate() {
+                if g as usize >= n {
+                    self.group.push(g - n as u32);
+                    self.tn.push(all.tn[i]);
+                    self.vn.push(all.vn[i]);
+                    self.x.extend_from_slice(&all.x[i * slots..(i + 1) * slots]);
+                }
+            }
+            for (i, &g) in all.span_group.iter().enumerate() {
+                if g as usize >= n {
+                    self.span_group.push(g - n as u32);
+                    self.spans.push(all.spans[i]);
+                }
+            }
+        }
+        Grouped {
+            rows: all,
+            starts,
+            order,
+            span_starts,
+            span_order,
+            slots,
+        }
+    }
+}
+
+/// The rows of some groups (`Arrived::take`), readable key by key.
+struct Grouped {
+    rows: Arrived,
+    starts: Vec<usize>,
+    order: Vec<u32>,
+    span_starts: Vec<usize>,
+    span_order: Vec<u32>,
+    slots: usize,
+}
+
+impl Grouped {
+    /// Number of groups.
+    fn len(&self) -> usize {
+        self.starts.len() - 1
+    }
+
+    /// Indices (into `rows`) of group `g`'s tile rows, in arrival order.
+    fn tiles(&self, g: usize) -> &[u32] {
+        &self.order[self.starts[g]..self.starts[g + 1]]
+    }
+
+    /// Group `g`'s spans of snapshot days.
+    fn spans(&self, g: usize) -> impl Iterator<Item = (i64, i64)> + '_ {
+        self.span_order[self.span_starts[g]..self.span_starts[g + 1]]
+            .iter()
+            .map(|&i| self.rows.spans[i as usize])
+    }
+
+    /// The stored values of tile row `r`.
+    fn x(&self, r: usize) -> &[i128] {
+        &self.rows.x[r * self.slots..(r + 1) * self.slots]
+    }
+
+    /// The snapshot days of group `g`, ascending.
+    fn days(&self, g: usize) -> Vec<i64> {
+        let mut n = 0;
+        let mut days: Vec<i64> = self
+            .spans(g)
+            .flat_map(|(s, e)| {
+                n += 1;
+                s..=e
+            })
+            .collect();
+        if n > 1 {
+            days.sort_unstable();
+            days.dedup();
+        }
+        days
     }
 }
 
@@ -494,8 +613,9 @@ struct KeyTotals {
     /// outputs, such as a count in three windows, are stored once).
     slot_args: Vec<usize>,
     fields: Fields,
-    keys: Vec<KeyRows>,
-    bytes: usize,
+    rows: Arrived,
+    /// Groups seen (DataFusion's `total_num_groups`, less those emitted).
+    groups: usize,
 }
 
 /// A constant BIGINT argument (NULL as `None`).
@@ -550,33 +670,30 @@ impl KeyTotals {
             outputs,
             slot_args,
             fields,
-            keys: Vec::new(),
-            bytes: 0,
+            rows: Arrived::default(),
+            groups: 0,
         })
     }
 
-    fn grow(&mut self, total_num_groups: usize) {
-        if self.keys.len() < total_num_groups {
-            let before = self.keys.capacity();
-            self.keys.resize_with(total_num_groups, KeyRows::default);
-            self.bytes += (self.keys.capacity() - before) * std::mem::size_of::<KeyRows>();
+    fn grow(&mut self, total_num_groups: usize) -> Result<()> {
+        if u32::try_from(total_num_groups).is_err() {
+            return exec_err!(
+                "{WINDOW_TOTALS}: more than {} keys in one grouping",
+                u32::MAX
+            );
         }
+        self.groups = self.groups.max(total_num_groups);
+        Ok(())
     }
 
-    /// Counts the bytes held by `keys` anew (after some were emitted).
-    fn recount(&mut self) {
-        self.bytes = self.keys.iter().map(KeyRows::bytes).sum::<usize>()
-            + self.keys.capacity() * std::mem::size_of::<KeyRows>();
-    }
-
-    /// The snapshot days of a key, ascending.
-    fn days(rows: &KeyRows) -> Vec<i64> {
-        let mut days: Vec<i64> = rows.spans.iter().flat_map(|&(s, e)| s..=e).collect();
-        if rows.spans.len() > 1 {
-            days.sort_unstable();
-            days.dedup();
-        }
-        days
+    /// Takes the rows of the groups `emit_to` names out.
+    fn take(&mut self, emit_to: EmitTo) -> Grouped {
+        let n = match emit_to {
+            EmitTo::All => self.groups,
+            EmitTo::First(n) => n.min(self.groups),
+        };
+        self.groups -= n;
+        self.rows.take(n, self.slot_args.len())
     }
 }
 
@@ -588,7 +705,7 @@ impl GroupsAccumulator for KeyTotals {
         opt_filter: Option<&BooleanArray>,
         total_num_groups: usize,
     ) -> Result<()> {
-        self.grow(total_num_groups);
+        self.grow(total_num_groups)?;
         let (tn, vn, s, e) = (
             ints(&values[0], "tn")?,
             ints(&values[1], "vn")?,
@@ -600,14 +717,16 @@ impl GroupsAccumulator for KeyTotals {
             .iter()
             .map(|a| Values::of(&values[*a]))
             .collect::<Result<Vec<_>>>()?;
+        let rows = &mut self.rows;
         for (i, &g) in group_indices.iter().enumerate() {
             if opt_filter.is_some_and(|f| !f.is_valid(i) || !f.value(i)) {
                 continue;
             }
-            let rows = &mut self.keys[g];
-            let before = rows.bytes();
+            // Below `u32::MAX`: checked by `grow`.
+            let g = g as u32;
             match (int_at(tn, i), int_at(vn, i)) {
                 (Some(t), Some(v)) => {
+                    rows.group.push(g);
                     rows.tn.push(t);
                     rows.vn.push(v);
                     rows.x.extend(xs.iter().map(|x| x.at(i).unwrap_or(NULL_X)));
@@ -615,20 +734,18 @@ impl GroupsAccumulator for KeyTotals {
                 (Some(_), None) => {}
                 (None, _) => {
                     if let (Some(s), Some(e)) = (int_at(s, i), int_at(e, i)) {
+                        rows.span_group.push(g);
                         rows.spans.push((s, e));
                     }
                 }
             }
-            self.bytes += rows.bytes() - before;
         }
         Ok(())
     }
 
     fn evaluate(&mut self, emit_to: EmitTo) -> Result<ArrayRef> {
-        let keys = emit_to.take_needed(&mut self.keys);
-        self.recount();
-        let slots = self.slot_args.len();
-        let key_days: Vec<Vec<i64>> = keys.iter().map(Self::days).collect();
+        let keys = self.take(emit_to);
+        let key_days: Vec<Vec<i64>> = (0..keys.len()).map(|g| keys.days(g)).collect();
         let total: usize = key_days.iter().map(Vec::len).sum();
         let Ok(last) = i32::try_from(total) else {
             return exec_err!("{WINDOW_TOTALS}: too many snapshot rows in one batch");
@@ -642,21 +759,24 @@ impl GroupsAccumulator for KeyTotals {
             .map(|o| OutColumn::new(&o.out, total))
             .collect::<Result<Vec<_>>>()?;
         let mut rows: Vec<TileRow> = Vec::new();
-        let mut order: Vec<usize> = Vec::new();
-        for (k, days) in keys.iter().zip(key_days) {
-            // Tile rows in event-day order, shared by all outputs.
+        let mut order: Vec<u32> = Vec::new();
+        for (g, days) in key_days.into_iter().enumerate() {
+            // Tile rows in event-day order (arrival order among equal days), shared by
+            // all outputs.
             order.clear();
-            order.extend(0..k.tn.len());
-            if !k.tn.is_sorted() {
-                order.sort_by_key(|&r| k.tn[r]);
+            order.extend_from_slice(keys.tiles(g));
+            let tn = &keys.rows.tn;
+            if !order.is_sorted_by_key(|&r| tn[r as usize]) {
+                order.sort_by_key(|&r| tn[r as usize]);
             }
             for (o, values) in self.outputs.iter().zip(outs.iter_mut()) {
                 rows.clear();
                 rows.extend(order.iter().filter_map(|&r| {
-                    let x = k.x[r * slots + o.slot];
+                    let r = r as usize;
+                    let x = keys.x(r)[o.slot];
                     (x != NULL_X && (o.kind == WindowKind::Sum || x > 0)).then_some(TileRow {
-                        tn: k.tn[r],
-                        vn: k.vn[r],
+                        tn: tn[r],
+                        vn: keys.rows.vn[r],
                         x,
                     })
                 }));
@@ -684,8 +804,7 @@ impl GroupsAccumulator for KeyTotals {
     }
 
     fn state(&mut self, emit_to: EmitTo) -> Result<Vec<ArrayRef>> {
-        let keys = emit_to.take_needed(&mut self.keys);
-        self.recount();
+        let keys = self.take(emit_to);
         let list = |t: DataType, lens: Vec<usize>, values: ArrayRef| -> Result<ArrayRef> {
             Ok(Arc::new(ListArray::try_new(
                 Arc::new(Field::new_list_field(t, true)),
@@ -694,26 +813,38 @@ impl GroupsAccumulator for KeyTotals {
                 None,
             )?))
         };
-        let ints_of = |f: &dyn Fn(&KeyRows) -> Vec<i64>| -> (Vec<usize>, ArrayRef) {
-            let parts: Vec<Vec<i64>> = keys.iter().map(f).collect();
-            (
-                parts.iter().map(Vec::len).collect(),
-                Arc::new(Int64Array::from(parts.concat())),
-            )
+        let groups = 0..keys.len();
+        let n_tiles: Vec<usize> = groups.clone().map(|g| keys.tiles(g).len()).collect();
+        let n_spans: Vec<usize> = groups.clone().map(|g| keys.spans(g).count()).collect();
+        let tile_values = |f: &dyn Fn(usize) -> i64| -> ArrayRef {
+            Arc::new(Int64Array::from_iter_values(
+                keys.order.iter().map(|&r| f(r as usize)),
+            ))
         };
-        let (n_tiles, tn) = ints_of(&|k| k.tn.clone());
-        let (_, vn) = ints_of(&|k| k.vn.clone());
-        let (n_spans, s) = ints_of(&|k| k.spans.iter().map(|p| p.0).collect());
-        let (_, e) = ints_of(&|k| k.spans.iter().map(|p| p.1).collect());
+        let tn = tile_values(&|r| keys.rows.tn[r]);
+        let vn = tile_values(&|r| keys.rows.vn[r]);
+        let span_values = |f: &dyn Fn((i64, i64)) -> i64| -> ArrayRef {
+            Arc::new(Int64Array::from_iter_values(
+                groups.clone().flat_map(|g| keys.spans(g).map(f)),
+            ))
+        };
+        let s = span_values(&|p| p.0);
+        let e = span_values(&|p| p.1);
         let x: Decimal128Array = keys
+            .order
             .iter()
-            .flat_map(|k| k.x.iter().map(|v| (*v != NULL_X).then_some(*v)))
+            .flat_map(|&r| {
+                keys.x(r as usize)
+                    .iter()
+                    .map(|v| (*v != NULL_X).then_some(*v))
+            })
             .collect();
         let x = Arc::new(x.with_precision_and_scale(38, 0)?);
+        let n_x = n_tiles.iter().map(|n| n * keys.slots).collect();
         Ok(vec![
             list(DataType::Int64, n_tiles.clone(), tn)?,
-            list(DataType::Int64, n_tiles.clone(), vn)?,
-            list(RAW, keys.iter().map(|k| k.x.len()).collect(), x as ArrayRef)?,
+            list(DataType::Int64, n_tiles, vn)?,
+            list(RAW, n_x, x as ArrayRef)?,
             list(DataType::Int64, n_spans.clone(), s)?,
             list(DataType::Int64, n_spans, e)?,
         ])
@@ -725,7 +856,7 @@ impl GroupsAccumulator for KeyTotals {
         group_indices: &[usize],
         total_num_groups: usize,
     ) -> Result<()> {
-        self.grow(total_num_groups);
+        self.grow(total_num_groups)?;
         let lists = values
             .iter()
             .map(|v| match v.as_list_opt::<i32>() {
@@ -748,18 +879,24 @@ impl GroupsAccumulator for KeyTotals {
         let Some(xv) = x.values().as_primitive_opt::<Decimal128Type>() else {
             return exec_err!("{WINDOW_TOTALS}: the state's values are not DECIMAL");
         };
+        let slots = self.slot_args.len();
+        let rows = &mut self.rows;
         for (i, &g) in group_indices.iter().enumerate() {
-            let rows = &mut self.keys[g];
-            let before = rows.bytes();
+            // Below `u32::MAX`: checked by `grow`.
+            let g = g as u32;
             let r = tn.value_offsets()[i] as usize..tn.value_offsets()[i + 1] as usize;
+            rows.group.extend(std::iter::repeat_n(g, r.len()));
             rows.tn.extend_from_slice(&tnv.values()[r.clone()]);
-            rows.vn.extend_from_slice(&vnv.values()[r]);
-            let r = x.value_offsets()[i] as usize..x.value_offsets()[i + 1] as usize;
+            rows.vn.extend_from_slice(&vnv.values()[r.clone()]);
+            let rx = x.value_offsets()[i] as usize..x.value_offsets()[i + 1] as usize;
+            if rx.len() != r.len() * slots {
+                return exec_err!("{WINDOW_TOTALS}: a state row has the wrong number of values");
+            }
             rows.x
-                .extend(r.map(|j| if xv.is_valid(j) { xv.value(j) } else { NULL_X }));
+                .extend(rx.map(|j| if xv.is_valid(j) { xv.value(j) } else { NULL_X }));
             let r = s.value_offsets()[i] as usize..s.value_offsets()[i + 1] as usize;
+            rows.span_group.extend(std::iter::repeat_n(g, r.len()));
             rows.spans.extend(r.map(|j| (sv.value(j), ev.value(j))));
-            self.bytes += rows.bytes() - before;
         }
         Ok(())
     }
@@ -775,8 +912,8 @@ impl GroupsAccumulator for KeyTotals {
             outputs: Vec::new(),
             slot_args: self.slot_args.clone(),
             fields: self.fields.clone(),
-            keys: Vec::new(),
-            bytes: 0,
+            rows: Arrived::default(),
+            groups: 0,
         };
         let rows: Vec<usize> = (0..n).collect();
         each.update_batch(values, &rows, opt_filter, n)?;
@@ -784,7 +921,7 @@ impl GroupsAccumulator for KeyTotals {
     }
 
     fn size(&self) -> usize {
-        self.bytes
+        self.rows.bytes()
     }
 }
 
@@ -799,7 +936,7 @@ impl Accumulator for OneKey {
     }
 
     fn evaluate(&mut self) -> Result<ScalarValue> {
-        self.0.grow(1);
+        self.0.grow(1)?;
         ScalarValue::try_from_array(&self.0.evaluate(EmitTo::All)?, 0)
     }
 
@@ -808,7 +945,7 @@ impl Accumulator for OneKey {
     }
 
     fn state(&mut self) -> Result<Vec<ScalarValue>> {
-        self.0.grow(1);
+        self.0.grow(1)?;
         self.0
             .state(EmitTo::All)?
             .iter()
@@ -950,6 +1087,48 @@ mod tests {
             fields.join(", "),
             outputs.join(", ")
         )
+    }
+
+    /// Taking the first groups (DataFusion's `EmitTo::First`, after a spilled grouping is
+    /// read back in key order) hands over their rows by key in arrival order, and keeps
+    /// the later groups' rows under group indices lowered by as many.
+    #[test]
+    fn taking_the_first_groups_keeps_the_rest_renumbered() {
+        let mut rows = Arrived::default();
+        // (group, tn, x0, x1) in arrival order; spans for groups 1 and 2.
+        for (g, t) in [(2, 10), (0, 11), (1, 12), (2, 13), (0, 14), (3, 15)] {
+            rows.group.push(g);
+            rows.tn.push(t);
+            rows.vn.push(t + 100);
+            rows.x.extend([t as i128, -(t as i128)]);
+        }
+        rows.span_group.extend([2, 1]);
+        rows.spans.extend([(1, 3), (4, 4)]);
+        let taken = rows.take(2, 2);
+        assert_eq!(taken.len(), 2);
+        let tn = |g: usize| -> Vec<i64> {
+            taken
+                .tiles(g)
+                .iter()
+                .map(|&r| taken.rows.tn[r as usize])
+                .collect()
+        };
+        assert_eq!(tn(0), [11, 14]);
+        assert_eq!(tn(1), [12]);
+        assert_eq!(taken.x(taken.tiles(0)[1] as usize), [14, -14]);
+        assert_eq!(taken.spans(1).collect::<Vec<_>>(), [(4, 4)]);
+        assert_eq!(taken.days(0), Vec::<i64>::new());
+        // Groups 2 and 3 are now 0 and 1, their rows still in arrival order.
+        assert_eq!(rows.group, [0, 0, 1]);
+        assert_eq!(rows.tn, [10, 13, 15]);
+        assert_eq!(rows.vn, [110, 113, 115]);
+        assert_eq!(rows.x, [10, -10, 13, -13, 15, -15]);
+        assert_eq!(rows.span_group, [0]);
+        assert_eq!(rows.spans, [(1, 3)]);
+        let rest = rows.take(2, 2);
+        assert_eq!(rest.days(0), [1, 2, 3]);
+        assert_eq!(rest.tiles(1).len(), 1);
+        assert!(rows.group.is_empty() && rows.spans.is_empty());
     }
 
     /// Worked by hand. Key `a` has three tile rows (event day, first visible day, value):
