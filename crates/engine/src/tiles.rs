@@ -264,6 +264,7 @@ fn rows_sql(
     source: &Source,
     days: &[NaiveDate],
     names_are_dates: bool,
+    schema: Option<&Schema>,
 ) -> String {
     let ev = ident(&source.spec.event_time);
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
@@ -298,12 +299,82 @@ fn rows_sql(
             same.join(", ")
         )
     };
-    let a = arr
-        .map(|a| day_of_sql(pipeline, &a))
-        .unwrap_or_else(|| day_of_sql(pipeline, &ev));
+    let day_of = |column: &str| day_of_in(pipeline, column, schema, days);
+    let t = day_of(&source.spec.event_time);
+    let a = match &source.spec.arrival_time {
+        Some(a) => day_of(a),
+        None => t.clone(),
+    };
+    format!("SELECT *, {t} AS __t, {a} AS __a FROM ({deduped})")
+}
+
+/// [`day_of_sql`] of timestamp column `column` for the rows of partitions `days`, as plain
+/// integer arithmetic where it can be: `to_local_time` looks up the zone's offset row by
+/// row (about 70 ns a row: 1.4 s of compute for the benchmark's tiles, docs/benchmarks.md,
+/// twenty-second measurement). Over the instants from a week before the first partition
+/// to 60 days after the last, the zone's offset changes only at known instants, so the
+/// day is `(t + offset - shift) / day`, with the offset as the first one plus a step at
+/// each change. Instants outside that span, and columns whose unit the schema does not
+/// tell, use [`day_of_sql`] itself. The same day either way: `day_of_in_equals_day_of_sql`
+/// compares both over instants around daylight-saving changes.
+fn day_of_in(
+    pipeline: &Pipeline,
+    column: &str,
+    schema: Option<&Schema>,
+    days: &[NaiveDate],
+) -> String {
+    let plain = day_of_sql(pipeline, &ident(column));
+    let unit = match schema.and_then(|s| s.field_with_name(column).ok()) {
+        Some(f) => match f.data_type() {
+            DataType::Timestamp(u, _) => *u,
+            _ => return plain,
+        },
+        None => return plain,
+    };
+    let (Some(first), Some(last)) = (days.iter().min(), days.iter().max()) else {
+        return plain;
+    };
+    let per_second: i64 = match unit {
+        TimeUnit::Second => 1,
+        TimeUnit::Millisecond => 1_000,
+        TimeUnit::Microsecond => 1_000_000,
+        TimeUnit::Nanosecond => 1_000_000_000,
+    };
+    let midnight = |d: NaiveDate| d.and_time(chrono::NaiveTime::MIN).and_utc();
+    let (from, to) = (
+        midnight(*first - chrono::Duration::days(7)),
+        midnight(*last + chrono::Duration::days(60)),
+    );
+    // Past 1970-01-03 the integer division below rounds down as a date must (all values
+    // positive); the span must also fit the column's unit.
+    let (Some(from_v), Some(to_v)) = (
+        from.timestamp().checked_mul(per_second),
+        to.timestamp().checked_mul(per_second),
+    ) else {
+        return plain;
+    };
+    if from.timestamp() < 2 * 86_400 || to_v.checked_add(2 * 86_400 * per_second).is_none() {
+        return plain;
+    }
+    let shift = pipeline
+        .cutoff_time
+        .signed_duration_since(chrono::NaiveTime::MIN)
+        .num_seconds();
+    let (offset, changes) = crate::time::offset_changes(pipeline.timezone, from, to);
+    let v = format!("CAST({} AS BIGINT)", ident(column));
+    let mut sum = format!("{v} + {}", (offset as i64 - shift) * per_second);
+    let mut before = offset as i64;
+    for (at, new) in changes {
+        sum.push_str(&format!(
+            " + CAST({v} >= {} AS BIGINT) * {}",
+            at.timestamp() * per_second,
+            (new as i64 - before) * per_second
+        ));
+        before = new as i64;
+    }
     format!(
-        "SELECT *, {} AS __t, {a} AS __a FROM ({deduped})",
-        day_of_sql(pipeline, &ev)
+        "CASE WHEN {v} >= {from_v} AND {v} < {to_v} THEN arrow_cast(CAST(({sum}) / {} AS INT), 'Date32') ELSE {plain} END",
+        86_400 * per_second
     )
 }
 
@@ -353,7 +424,7 @@ pub fn tile_sql(
     format!(
         "SELECT {} FROM ({}) GROUP BY __part, __key, __t, __a ORDER BY __part, __key",
         cols.join(", "),
-        rows_sql(pipeline, source, days, names_are_dates)
+        rows_sql(pipeline, source, days, names_are_dates, schema)
     )
 }
 
@@ -413,7 +484,7 @@ pub fn distinct_sql(
         .unwrap_or_default();
     format!(
         "SELECT DISTINCT __part, __key, __t, __a, {expr} AS __v FROM ({}) WHERE __key IS NOT NULL AND {expr} IS NOT NULL{wh} ORDER BY __part, __key",
-        rows_sql(pipeline, source, days, names_are_dates)
+        rows_sql(pipeline, source, days, names_are_dates, None)
     )
 }
 
@@ -1619,6 +1690,129 @@ mod tests {
             "daymark: 1\nname: t\ntimezone: UTC\nkey: k\noutput: out\nsources:\n  s: {{ location: s, event_time: t }}\npopulation:\n  recent_activity: {{ source: s, within: 30d, filter: \"v > 0\" }}\nfeatures:\n{features}"
         );
         daymark_spec::load_str(&text, None).unwrap()
+    }
+
+    /// [`day_of_in`] (integer arithmetic) gives the same day as [`day_of_sql`]
+    /// (DataFusion's `to_local_time`, the naive path's) for every instant: every quarter
+    /// of an hour and one unit either side, in the weeks around the daylight-saving
+    /// changes of 2025 in four zones (Lord Howe's shift is 30 minutes; Kolkata has none),
+    /// with cutoffs at 00:00 and 06:30, in all four timestamp units; and for instants
+    /// outside the span the arithmetic covers (they take `to_local_time`).
+    #[tokio::test]
+    async fn day_of_in_equals_day_of_sql() {
+        use datafusion::arrow::array::{Array, ArrayRef, Date32Array, PrimitiveArray};
+        use datafusion::arrow::datatypes::{
+            Field, TimestampMicrosecondType, TimestampMillisecondType, TimestampNanosecondType,
+            TimestampSecondType,
+        };
+        let d = |s: &str| -> NaiveDate { s.parse().unwrap() };
+        let weeks = [
+            ("2025-03-05", "2025-03-13"),
+            ("2025-03-28", "2025-04-09"),
+            ("2025-09-24", "2025-10-09"),
+            ("2025-10-22", "2025-11-05"),
+        ];
+        let mut seconds: Vec<i64> = Vec::new();
+        for (a, b) in weeks {
+            let (a, b) = (d(a), d(b));
+            let start = a.and_time(chrono::NaiveTime::MIN).and_utc().timestamp();
+            let end = b.and_time(chrono::NaiveTime::MIN).and_utc().timestamp();
+            seconds.extend((start..end).step_by(900));
+        }
+        // Outside the span of the partitions below (`to_local_time` for these).
+        let outside = [
+            "2024-11-03T07:00:00Z",
+            "2026-03-08T08:00:00Z",
+            "2031-06-01T04:59:59Z",
+        ];
+        for t in outside {
+            seconds.push(
+                t.parse::<chrono::DateTime<chrono::Utc>>()
+                    .unwrap()
+                    .timestamp(),
+            );
+        }
+        // Partitions from 2025-03-01 to 2025-11-01: the arithmetic covers 2025-02-22 to
+        // 2025-12-31.
+        let days: Vec<NaiveDate> = d("2025-03-01").iter_days().take(246).collect();
+        for zone in [
+            "America/Chicago",
+            "Europe/London",
+            "Australia/Lord_Howe",
+            "Asia/Kolkata",
+        ] {
+            for cutoff in ["00:00", "06:30"] {
+                let text = format!(
+                    "daymark: 1\nname: t\ntimezone: {zone}\ncutoff_time: \"{cutoff}\"\nkey: k\noutput: out\nsources:\n  s: {{ location: s, event_time: ts }}\npopulation:\n  recent_activity: {{ source: s, within: 30d }}\nfeatures:\n  - {{ name: n, source: s, agg: count, window: 7d }}\n"
+                );
+                let p = daymark_spec::load_str(&text, None).unwrap();
+                for unit in [
+                    TimeUnit::Second,
+                    TimeUnit::Millisecond,
+                    TimeUnit::Microsecond,
+                    TimeUnit::Nanosecond,
+                ] {
+                    let per: i64 = match unit {
+                        TimeUnit::Second => 1,
+                        TimeUnit::Millisecond => 1_000,
+                        TimeUnit::Microsecond => 1_000_000,
+                        TimeUnit::Nanosecond => 1_000_000_000,
+                    };
+                    let values: Vec<i64> = seconds
+                        .iter()
+                        .flat_map(|s| [s * per - 1, s * per, s * per + 1])
+                        .collect();
+                    let utc: Option<Arc<str>> = Some("UTC".into());
+                    let ts: ArrayRef = match unit {
+                        TimeUnit::Second => Arc::new(
+                            PrimitiveArray::<TimestampSecondType>::from(values.clone())
+                                .with_timezone_opt(utc),
+                        ),
+                        TimeUnit::Millisecond => Arc::new(
+                            PrimitiveArray::<TimestampMillisecondType>::from(values.clone())
+                                .with_timezone_opt(utc),
+                        ),
+                        TimeUnit::Microsecond => Arc::new(
+                            PrimitiveArray::<TimestampMicrosecondType>::from(values.clone())
+                                .with_timezone_opt(utc),
+                        ),
+                        TimeUnit::Nanosecond => Arc::new(
+                            PrimitiveArray::<TimestampNanosecondType>::from(values.clone())
+                                .with_timezone_opt(utc),
+                        ),
+                    };
+                    let schema = Schema::new(vec![Field::new("ts", ts.data_type().clone(), false)]);
+                    let batch = RecordBatch::try_new(Arc::new(schema.clone()), vec![ts]).unwrap();
+                    let ctx = SessionContext::new();
+                    ctx.register_batch("s", batch).unwrap();
+                    let fast = day_of_in(&p, "ts", Some(&schema), &days);
+                    assert!(fast.starts_with("CASE"), "{fast}");
+                    let sql = format!(
+                        "SELECT {fast} AS fast, {} AS plain FROM s",
+                        day_of_sql(&p, "\"ts\"")
+                    );
+                    let batches = ctx.sql(&sql).await.unwrap().collect().await.unwrap();
+                    let mut n = 0;
+                    for b in &batches {
+                        let fast = b.column(0).as_any().downcast_ref::<Date32Array>().unwrap();
+                        let plain = b.column(1).as_any().downcast_ref::<Date32Array>().unwrap();
+                        for i in 0..b.num_rows() {
+                            assert_eq!(
+                                fast.value(i),
+                                plain.value(i),
+                                "{zone} cutoff {cutoff} {unit:?}: value {}",
+                                values[n + i]
+                            );
+                        }
+                        n += b.num_rows();
+                    }
+                    assert_eq!(n, values.len());
+                }
+            }
+        }
+        // Without the column's unit, the plain form.
+        let p = pipeline("  - { name: n, source: s, agg: count, window: 7d }\n");
+        assert_eq!(day_of_in(&p, "t", None, &days), day_of_sql(&p, "\"t\""));
     }
 
     #[test]

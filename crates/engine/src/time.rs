@@ -4,7 +4,7 @@
 //! starts at (D - W) at the same wall time, so across a daylight-saving change a window
 //! covers 23 or 25 hours for that day, never a shifted day boundary.
 
-use chrono::{DateTime, Duration, NaiveDate, NaiveTime, TimeZone, Utc};
+use chrono::{DateTime, Duration, NaiveDate, NaiveTime, Offset, TimeZone, Utc};
 use chrono_tz::Tz;
 
 /// The UTC instant of wall time `time` on `day` in `tz`.
@@ -37,12 +37,103 @@ pub fn window_start(tz: Tz, time: NaiveTime, day: NaiveDate, days: u32) -> DateT
     local_instant(tz, day - Duration::days(days as i64), time)
 }
 
+/// Seconds east of UTC of `tz` at instant `t`.
+pub fn utc_offset(tz: Tz, t: DateTime<Utc>) -> i32 {
+    tz.offset_from_utc_datetime(&t.naive_utc())
+        .fix()
+        .local_minus_utc()
+}
+
+/// The UTC offsets of `tz` over `[from, to)`: the offset at `from` (seconds east of UTC),
+/// then each change inside the range as (first instant of the new offset, new offset).
+///
+/// The time-zone database gives offsets, not changes: this probes every quarter of an hour
+/// and finds a change to the second by bisection. Two changes less than a quarter of an
+/// hour apart would be missed; the database has none since 1970 (common knowledge, from
+/// memory; the tests check the changes of several zones against the offsets).
+pub fn offset_changes(
+    tz: Tz,
+    from: DateTime<Utc>,
+    to: DateTime<Utc>,
+) -> (i32, Vec<(DateTime<Utc>, i32)>) {
+    let first = utc_offset(tz, from);
+    let (mut at, mut current) = (from, first);
+    let mut changes = Vec::new();
+    while at < to {
+        let next = (at + Duration::minutes(15)).min(to);
+        if utc_offset(tz, next) != current {
+            // The change is in (at, next]: bisect, in whole seconds (changes are at whole
+            // seconds), to the first second of the new offset.
+            let second = |s: i64| DateTime::from_timestamp(s, 0).unwrap_or(next);
+            let (mut lo, mut hi) = (at.timestamp(), next.timestamp());
+            while hi - lo > 1 {
+                let mid = lo + (hi - lo) / 2;
+                if utc_offset(tz, second(mid)) == current {
+                    lo = mid;
+                } else {
+                    hi = mid;
+                }
+            }
+            let hi = second(hi);
+            current = utc_offset(tz, hi);
+            if hi < to {
+                changes.push((hi, current));
+            }
+        }
+        at = next;
+    }
+    (first, changes)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
     fn d(s: &str) -> NaiveDate {
         s.parse().unwrap()
+    }
+
+    /// The offsets from [`offset_changes`] (the first plus each change) equal the zone's
+    /// offset every 7 minutes of 2024-2026, and each change is the first second of its
+    /// offset, in zones with changes of an hour, of half an hour (Lord Howe), none
+    /// (Kolkata), and a zone that dropped daylight saving in 2019 (Sao Paulo).
+    #[test]
+    fn offset_changes_match_the_zone_offsets() {
+        let utc = |s: &str| s.parse::<DateTime<Utc>>().unwrap();
+        let (from, to) = (utc("2024-01-01T00:00:00Z"), utc("2027-01-01T00:00:00Z"));
+        for zone in [
+            "America/Chicago",
+            "Europe/Lisbon",
+            "Australia/Lord_Howe",
+            "Asia/Kolkata",
+            "America/Sao_Paulo",
+        ] {
+            let tz: Tz = zone.parse().unwrap();
+            let (first, changes) = offset_changes(tz, from, to);
+            let expected_changes = match zone {
+                "Asia/Kolkata" | "America/Sao_Paulo" => 0,
+                _ => 6,
+            };
+            assert_eq!(changes.len(), expected_changes, "{zone}: {changes:?}");
+            let mut t = from;
+            let (mut offset, mut next) = (first, 0);
+            while t < to {
+                while next < changes.len() && changes[next].0 <= t {
+                    offset = changes[next].1;
+                    next += 1;
+                }
+                assert_eq!(offset, utc_offset(tz, t), "{zone} at {t}");
+                t += Duration::minutes(7);
+            }
+            for (at, new) in &changes {
+                assert_eq!(utc_offset(tz, *at), *new);
+                assert_ne!(
+                    utc_offset(tz, *at - Duration::seconds(1)),
+                    *new,
+                    "{zone} {at}"
+                );
+            }
+        }
     }
 
     #[test]
