@@ -145,7 +145,8 @@ struct Visible {
 
 impl Visible {
     /// Nothing visible yet; `rows` (in event-day order) are the rows that may become so.
-    fn new(kind: WindowKind, rows: &[TileRow]) -> Self {
+    /// `per_day` is a buffer to reuse.
+    fn new(kind: WindowKind, rows: &[TileRow], mut per_day: Vec<u32>) -> Self {
         let (first_day, span) = match (rows.first(), rows.last()) {
             (Some(f), Some(l)) if kind == WindowKind::Days => (
                 f.tn,
@@ -160,7 +161,11 @@ impl Visible {
             kind,
             rows: 0,
             sum: 0,
-            per_day: vec![0; span],
+            per_day: {
+                per_day.clear();
+                per_day.resize(span, 0);
+                per_day
+            },
             sparse: HashMap::new(),
             first_day,
             days: 0,
@@ -230,11 +235,15 @@ fn totals(
     rows: &[TileRow],
     days: &[i64],
     out: &mut OutColumn,
+    scratch: &mut Scratch,
 ) -> Result<()> {
-    let mut visible = Visible::new(kind, rows);
-    let mut shown = vec![false; rows.len()];
+    let mut visible = Visible::new(kind, rows, std::mem::take(&mut scratch.per_day));
+    let shown = &mut scratch.shown;
+    shown.clear();
+    shown.resize(rows.len(), false);
     // Rows in the window not visible yet, by first visible day.
-    let mut waiting: BinaryHeap<Reverse<(i64, usize)>> = BinaryHeap::new();
+    let waiting = &mut scratch.waiting;
+    waiting.clear();
     let (mut entered, mut left) = (0usize, 0usize);
     for &d in days {
         // A row can be visible on day d only if its event day is before d.
@@ -274,7 +283,16 @@ fn totals(
             WindowKind::LastDay => visible.last.map(i128::from),
         })?;
     }
+    scratch.per_day = visible.per_day;
     Ok(())
+}
+
+/// Buffers [`totals`] reuses from one call to the next (one call per key and output).
+#[derive(Default)]
+struct Scratch {
+    per_day: Vec<u32>,
+    shown: Vec<bool>,
+    waiting: BinaryHeap<Reverse<(i64, usize)>>,
 }
 
 /// One output's values for every snapshot row of a batch, in the output's own type,
@@ -758,7 +776,22 @@ impl GroupsAccumulator for KeyTotals {
             .iter()
             .map(|o| OutColumn::new(&o.out, total))
             .collect::<Result<Vec<_>>>()?;
-        let mut rows: Vec<TileRow> = Vec::new();
+        // The rows an output reads depend on its value column and on whether it counts
+        // only values above zero: outputs alike (a count in three windows) share them.
+        let mut sets: Vec<(usize, bool)> = Vec::new();
+        let set_of: Vec<usize> = self
+            .outputs
+            .iter()
+            .map(|o| {
+                let set = (o.slot, o.kind != WindowKind::Sum);
+                sets.iter().position(|s| *s == set).unwrap_or_else(|| {
+                    sets.push(set);
+                    sets.len() - 1
+                })
+            })
+            .collect();
+        let mut rows: Vec<Vec<TileRow>> = sets.iter().map(|_| Vec::new()).collect();
+        let mut scratch = Scratch::default();
         let mut order: Vec<u32> = Vec::new();
         for (g, days) in key_days.into_iter().enumerate() {
             // Tile rows in event-day order (arrival order among equal days), shared by
@@ -769,18 +802,20 @@ impl GroupsAccumulator for KeyTotals {
             if !order.is_sorted_by_key(|&r| tn[r as usize]) {
                 order.sort_by_key(|&r| tn[r as usize]);
             }
-            for (o, values) in self.outputs.iter().zip(outs.iter_mut()) {
+            for (&(slot, positive), rows) in sets.iter().zip(rows.iter_mut()) {
                 rows.clear();
                 rows.extend(order.iter().filter_map(|&r| {
                     let r = r as usize;
-                    let x = keys.x(r)[o.slot];
-                    (x != NULL_X && (o.kind == WindowKind::Sum || x > 0)).then_some(TileRow {
+                    let x = keys.x(r)[slot];
+                    (x != NULL_X && (!positive || x > 0)).then_some(TileRow {
                         tn: tn[r],
                         vn: keys.rows.vn[r],
                         x,
                     })
                 }));
-                totals(o.kind, o.window, &rows, &days, values)?;
+            }
+            for ((o, values), set) in self.outputs.iter().zip(outs.iter_mut()).zip(&set_of) {
+                totals(o.kind, o.window, &rows[*set], &days, values, &mut scratch)?;
             }
             dn.extend(days);
             // At most `last`, checked above.
