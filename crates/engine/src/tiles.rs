@@ -334,12 +334,7 @@ fn day_of_in(
     let (Some(first), Some(last)) = (days.iter().min(), days.iter().max()) else {
         return plain;
     };
-    let per_second: i64 = match unit {
-        TimeUnit::Second => 1,
-        TimeUnit::Millisecond => 1_000,
-        TimeUnit::Microsecond => 1_000_000,
-        TimeUnit::Nanosecond => 1_000_000_000,
-    };
+    let per_second = units_per_second(unit);
     let midnight = |d: NaiveDate| d.and_time(chrono::NaiveTime::MIN).and_utc();
     let (from, to) = (
         midnight(*first - chrono::Duration::days(7)),
@@ -428,6 +423,16 @@ pub fn tile_sql(
     )
 }
 
+/// Raw values of a timestamp of unit `u` in one second.
+fn units_per_second(u: TimeUnit) -> i64 {
+    match u {
+        TimeUnit::Second => 1,
+        TimeUnit::Millisecond => 1_000,
+        TimeUnit::Microsecond => 1_000_000,
+        TimeUnit::Nanosecond => 1_000_000_000,
+    }
+}
+
 /// SQL: event time `ev` is after arrival time `arr` by more than the tolerance
 /// ([`CLOCK_SKEW_TOLERANCE_SECS`]). When `schema` shows both as timestamps of one unit,
 /// their raw values are compared: adding an interval to a timestamp goes through calendar
@@ -440,12 +445,7 @@ fn event_after_arrival(ev: &str, arr: &str, schema: Option<&Schema>) -> String {
     };
     match (unit(ev), unit(arr)) {
         (Some(u), Some(v)) if u == v => {
-            let per_second: i64 = match u {
-                TimeUnit::Second => 1,
-                TimeUnit::Millisecond => 1_000,
-                TimeUnit::Microsecond => 1_000_000,
-                TimeUnit::Nanosecond => 1_000_000_000,
-            };
+            let per_second = units_per_second(u);
             format!(
                 "CAST({} AS BIGINT) - CAST({} AS BIGINT) > {}",
                 ident(ev),
@@ -1700,11 +1700,8 @@ mod tests {
     /// outside the span the arithmetic covers (they take `to_local_time`).
     #[tokio::test]
     async fn day_of_in_equals_day_of_sql() {
-        use datafusion::arrow::array::{Array, ArrayRef, Date32Array, PrimitiveArray};
-        use datafusion::arrow::datatypes::{
-            Field, TimestampMicrosecondType, TimestampMillisecondType, TimestampNanosecondType,
-            TimestampSecondType,
-        };
+        use datafusion::arrow::array::{Array, Date32Array};
+        use datafusion::arrow::datatypes::Field;
         let d = |s: &str| -> NaiveDate { s.parse().unwrap() };
         let weeks = [
             ("2025-03-05", "2025-03-13"),
@@ -1752,35 +1749,16 @@ mod tests {
                     TimeUnit::Microsecond,
                     TimeUnit::Nanosecond,
                 ] {
-                    let per: i64 = match unit {
-                        TimeUnit::Second => 1,
-                        TimeUnit::Millisecond => 1_000,
-                        TimeUnit::Microsecond => 1_000_000,
-                        TimeUnit::Nanosecond => 1_000_000_000,
-                    };
+                    let per = units_per_second(unit);
                     let values: Vec<i64> = seconds
                         .iter()
                         .flat_map(|s| [s * per - 1, s * per, s * per + 1])
                         .collect();
-                    let utc: Option<Arc<str>> = Some("UTC".into());
-                    let ts: ArrayRef = match unit {
-                        TimeUnit::Second => Arc::new(
-                            PrimitiveArray::<TimestampSecondType>::from(values.clone())
-                                .with_timezone_opt(utc),
-                        ),
-                        TimeUnit::Millisecond => Arc::new(
-                            PrimitiveArray::<TimestampMillisecondType>::from(values.clone())
-                                .with_timezone_opt(utc),
-                        ),
-                        TimeUnit::Microsecond => Arc::new(
-                            PrimitiveArray::<TimestampMicrosecondType>::from(values.clone())
-                                .with_timezone_opt(utc),
-                        ),
-                        TimeUnit::Nanosecond => Arc::new(
-                            PrimitiveArray::<TimestampNanosecondType>::from(values.clone())
-                                .with_timezone_opt(utc),
-                        ),
-                    };
+                    let ts = datafusion::arrow::compute::cast(
+                        &datafusion::arrow::array::Int64Array::from(values.clone()),
+                        &DataType::Timestamp(unit, Some("UTC".into())),
+                    )
+                    .unwrap();
                     let schema = Schema::new(vec![Field::new("ts", ts.data_type().clone(), false)]);
                     let batch = RecordBatch::try_new(Arc::new(schema.clone()), vec![ts]).unwrap();
                     let ctx = SessionContext::new();
