@@ -23,6 +23,7 @@ pub fn sub(out: &Location, dir: &str) -> Location {
     Location {
         prefix: child(&out.prefix, &[dir]),
         original: format!("{}/{dir}", out.original.trim_end_matches('/')),
+        local_dir: out.local_dir.as_ref().map(|d| d.join(dir)),
         ..out.clone()
     }
 }

@@ -82,9 +82,12 @@ impl Listing {
 pub async fn list_days(loc: &Location, day_partition: &str) -> Result<Listing, DiscoverError> {
     let listed = match &loc.local_dir {
         // A local folder: the same entries as the store's listing, with a third of the
-        // file system calls (see `local_listing.rs`).
-        Some(dir) => {
-            let (dir, prefix) = (dir.clone(), loc.prefix.clone());
+        // file system calls (see `local_listing.rs`). The folder is the prefix's, under
+        // the local store's root `/` (a location derived from another keeps its
+        // `local_dir` only as a sign of the store).
+        Some(_) => {
+            let prefix = loc.prefix.clone();
+            let dir = std::path::Path::new("/").join(prefix.as_ref());
             tokio::task::spawn_blocking(move || crate::local_listing::list_local(&dir, &prefix))
                 .await
                 .unwrap_or_else(|e| {
