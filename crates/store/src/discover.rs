@@ -87,8 +87,7 @@ pub async fn list_days(loc: &Location, day_partition: &str) -> Result<Listing, D
         // `local_dir` only as a sign of the store).
         Some(_) => {
             let prefix = loc.prefix.clone();
-            let dir = std::path::Path::new("/").join(prefix.as_ref());
-            tokio::task::spawn_blocking(move || crate::local_listing::list_local(&dir, &prefix))
+            tokio::task::spawn_blocking(move || crate::local_listing::list_local(&prefix))
                 .await
                 .unwrap_or_else(|e| {
                     Err(object_store::Error::Generic {

@@ -13,8 +13,8 @@
 //! root), sizes, modification times and ETags (`{inode:x}-{mtime µs:x}-{size:x}`); files
 //! whose name ends in `#` and digits (the local store's unfinished uploads) are skipped;
 //! symbolic links are followed and broken ones skipped; entries that vanish during the
-//! walk are skipped; a symbolic link loop is an error. The test `local_listing.rs` lists
-//! one tree both ways and compares.
+//! walk are skipped; a symbolic link loop is an error. The tests below list one tree both
+//! ways and compare.
 
 use chrono::{DateTime, Utc};
 use object_store::path::Path as StorePath;
@@ -32,15 +32,13 @@ fn walk_error(path: &Path, reason: impl std::fmt::Display) -> object_store::Erro
     }
 }
 
-/// Every file under `dir` (the folder of `prefix` in a local store rooted at `/`), in no
-/// particular order.
-pub(crate) fn list_local(
-    dir: &Path,
-    prefix: &StorePath,
-) -> Result<Vec<ObjectMeta>, object_store::Error> {
+/// Every file under `prefix` in the local store rooted at `/` (the folder `/<prefix>`), in
+/// no particular order.
+pub(crate) fn list_local(prefix: &StorePath) -> Result<Vec<ObjectMeta>, object_store::Error> {
+    let dir = Path::new("/").join(prefix.as_ref());
     let mut out = Vec::new();
-    let mut ancestors = vec![dir.to_path_buf()];
-    walk(dir, prefix.as_ref(), &mut ancestors, &mut out)?;
+    let mut ancestors = vec![dir.clone()];
+    walk(&dir, prefix.as_ref(), &mut ancestors, &mut out)?;
     Ok(out)
 }
 
@@ -226,7 +224,7 @@ mod tests {
 
         let reference = sorted(by_object_store(&root).await);
         let prefix = StorePath::from_absolute_path(&root).unwrap();
-        let ours = sorted(list_local(&root, &prefix).unwrap());
+        let ours = sorted(list_local(&prefix).unwrap());
         assert_eq!(ours, reference);
         // The tree really has what the comparison is about.
         let names: Vec<String> = ours
@@ -256,7 +254,7 @@ mod tests {
         // A folder that does not exist lists as empty, both ways.
         let gone = tmp.path().join("nothing-here");
         let prefix = StorePath::from_absolute_path(&gone).unwrap();
-        assert!(list_local(&gone, &prefix).unwrap().is_empty());
+        assert!(list_local(&prefix).unwrap().is_empty());
         assert!(by_object_store(&gone).await.is_empty());
     }
 
@@ -269,7 +267,7 @@ mod tests {
         write(&root.join("dt=2026-01-01/a.parquet"), 10);
         std::os::unix::fs::symlink(&root, root.join("dt=2026-01-01/back")).unwrap();
         let prefix = StorePath::from_absolute_path(&root).unwrap();
-        let err = list_local(&root, &prefix).unwrap_err().to_string();
+        let err = list_local(&prefix).unwrap_err().to_string();
         assert!(err.contains("loops back"), "{err}");
         let reference: Result<Vec<ObjectMeta>, _> = LocalFileSystem::new()
             .list(Some(&prefix))
