@@ -23,6 +23,7 @@ use parquet::arrow::AsyncArrowWriter;
 use parquet::basic::{Compression, ZstdLevel};
 use parquet::file::metadata::KeyValue;
 use parquet::file::properties::WriterProperties;
+use parquet::schema::types::ColumnPath;
 use serde_json::json;
 use std::collections::BTreeMap;
 use std::time::Instant;
@@ -266,9 +267,13 @@ pub const TILE_ROW_GROUP_ROWS: usize = 16 * 1024;
 /// Parquet settings of tile files: LZ4 (raw), which is several times cheaper to set up
 /// and decode than zstd for the many small column chunks tiles have; tiles are an
 /// intermediate layer, read back by daymark only. Row groups of [`TILE_ROW_GROUP_ROWS`].
+/// No dictionaries: keys are unique within a tile day and counts vary, so building them
+/// (hashing every value) cost about 5% of the tile build's compute for 7% smaller files
+/// (docs/benchmarks.md, twenty-third measurement).
 pub fn tile_writer_properties() -> WriterProperties {
     WriterProperties::builder()
         .set_compression(Compression::LZ4_RAW)
+        .set_dictionary_enabled(false)
         .set_max_row_group_row_count(Some(TILE_ROW_GROUP_ROWS))
         .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
         .build()
@@ -282,6 +287,25 @@ pub fn writer_properties() -> WriterProperties {
         ))
         .set_created_by(format!("daymark {}", env!("CARGO_PKG_VERSION")))
         .build()
+}
+
+/// [`writer_properties`] for a snapshot of `schema` (key first): dictionary encoding only
+/// for the text columns after the key, whose few values (plans, states) repeat. The key is
+/// unique within a snapshot, and for numbers zstd over plain values was both smaller and
+/// cheaper to write: the benchmark's 365 snapshots took 126 MB against 154 MB
+/// (docs/benchmarks.md, twenty-third measurement).
+fn snapshot_properties(schema: &arrow::datatypes::Schema) -> WriterProperties {
+    let mut b = writer_properties().into_builder();
+    for (i, f) in schema.fields().iter().enumerate() {
+        let repeats = matches!(
+            f.data_type(),
+            DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View | DataType::Dictionary(..)
+        );
+        if i == 0 || !repeats {
+            b = b.set_column_dictionary_enabled(ColumnPath::from(f.name().as_str()), false);
+        }
+    }
+    b.build()
 }
 
 /// One Parquet file being written to a staging path, published by [`DayWriter::finish`].
@@ -307,7 +331,8 @@ impl DayWriter {
         day: NaiveDate,
         schema: arrow::datatypes::SchemaRef,
     ) -> Result<Self, BuildError> {
-        Self::with_properties(out, final_path, day, schema, writer_properties(), false)
+        let properties = snapshot_properties(&schema);
+        Self::with_properties(out, final_path, day, schema, properties, false)
     }
 
     /// A file written straight to `final_path` with `properties`, for files that are
