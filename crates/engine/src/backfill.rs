@@ -379,6 +379,7 @@ fn direct_tail(
     reads_last: &BTreeMap<String, crate::sql::SourceRead>,
     types: &TileTypes,
     mut ctes: Vec<String>,
+    ordered: bool,
 ) -> String {
     use crate::window_totals::WindowKind;
     // Value columns of the union: (name, type, source, expression over the tile row).
@@ -562,7 +563,13 @@ fn direct_tail(
         "__population AS (SELECT {} FROM (SELECT __key, unnest(__r) AS __o FROM __g))",
         p_cols.join(", ")
     ));
-    finish(pipeline, &ctes, &layer0, &[], "snapshot_date, ")
+    finish(
+        pipeline,
+        &ctes,
+        &layer0,
+        &[],
+        ordered.then_some("snapshot_date, "),
+    )
 }
 
 /// One branch of the big UNION: named columns (the rest are NULL).
@@ -583,6 +590,22 @@ pub fn range_query(
     mode: KnowledgeOverride,
     types: &TileTypes,
     keys: &KeyRange,
+) -> String {
+    range_sql(pipeline, layouts, first, last, mode, types, keys, true)
+}
+
+/// [`range_query`]; `ordered: false` leaves out the final sort of windowed-totals queries
+/// ([`direct_features`]), whose rows come as runs of one key ([`crate::by_day`]).
+#[allow(clippy::too_many_arguments)]
+fn range_sql(
+    pipeline: &Pipeline,
+    layouts: &BTreeMap<String, TileLayout>,
+    first: NaiveDate,
+    last: NaiveDate,
+    mode: KnowledgeOverride,
+    types: &TileTypes,
+    keys: &KeyRange,
+    ordered: bool,
 ) -> String {
     let ty = |source: &str, col: String| types.get(&(source.to_string(), col));
     // The type of every union column, for typed NULLs.
@@ -688,7 +711,7 @@ pub fn range_query(
         }
     }
     if direct_features(pipeline, types) {
-        return direct_tail(pipeline, layouts, &reads_last, types, ctes);
+        return direct_tail(pipeline, layouts, &reads_last, types, ctes, ordered);
     }
     ctes.push(
         "__spine AS (SELECT __key, unnest(range(__s, __e + 1)) AS __dn FROM __pop_spans WHERE __s <= __e)"
@@ -1020,7 +1043,7 @@ pub fn range_query(
     ctes.push(format!(
         "__population AS (SELECT *{extra} FROM __w WHERE __k = 1)"
     ));
-    finish(pipeline, &ctes, &layer0, &joins, "snapshot_date, ")
+    finish(pipeline, &ctes, &layer0, &joins, Some("snapshot_date, "))
 }
 
 /// Tile rows of the sources' history per snapshot day below which a range is built
@@ -1179,7 +1202,47 @@ pub async fn build_range(
     )
     .await
     .map_err(engine(first))?;
-    let (schema, mut stream) = if ranges.len() <= 1 {
+    let limited = matches!(
+        ctx.runtime_env().memory_pool.memory_limit(),
+        datafusion::execution::memory_pool::MemoryLimit::Finite(_)
+    );
+    let (schema, mut stream) = if ranges.len() <= 1 && !limited && direct_features(pipeline, &types)
+    {
+        // Windowed totals without the query's final sort, put in order here
+        // ([`crate::by_day`]). The sorted rows were all held by the sort as well; under a
+        // memory limit the query sorts them, within the memory pool, as it did.
+        let sql = range_sql(
+            pipeline,
+            layouts,
+            first,
+            last,
+            mode,
+            &types,
+            &KeyRange::all(),
+            false,
+        );
+        let plan = ctx
+            .sql(&sql)
+            .await
+            .map_err(engine(first))?
+            .create_physical_plan()
+            .await
+            .map_err(engine(first))?;
+        let schema = plan.schema();
+        let batches = datafusion::physical_plan::collect(plan, ctx.task_ctx())
+            .await
+            .map_err(engine(first))?;
+        let key = schema
+            .index_of(&pipeline.file.key)
+            .map_err(|e| engine(first)(e.into()))?;
+        let date = schema
+            .index_of("snapshot_date")
+            .map_err(|e| engine(first)(e.into()))?;
+        let rows =
+            crate::by_day::ByDay::new(schema.clone(), batches, key, date).map_err(engine(first))?;
+        let ahead = ctx.state().config().target_partitions();
+        (schema, rows.into_stream(ahead))
+    } else if ranges.len() <= 1 {
         let sql = range_query(
             pipeline,
             layouts,

@@ -20,6 +20,7 @@
 
 pub mod backfill;
 pub mod build;
+pub mod by_day;
 pub mod check;
 pub mod functions;
 pub mod provenance;

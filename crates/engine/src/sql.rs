@@ -391,7 +391,7 @@ pub fn snapshot_query(
     }
     join_source_aggregates(&per_source, &mut ctes, &mut joins);
 
-    let sql = finish(pipeline, &ctes, &layer0, &joins, "");
+    let sql = finish(pipeline, &ctes, &layer0, &joins, Some(""));
     SnapshotQuery {
         day,
         cutoff,
@@ -431,13 +431,14 @@ pub(crate) fn join_source_aggregates(
 
 /// Adds derived features (in layers, each using features already computed) and the final
 /// projection in declared order to the first layer `layer0` (key, date, source features)
-/// over `__population p` and its `joins`.
+/// over `__population p` and its `joins`, ordered by `order_prefix` then the key (`None`:
+/// in no order).
 pub(crate) fn finish(
     pipeline: &Pipeline,
     ctes: &[String],
     layer0: &[String],
     joins: &[String],
-    order_prefix: &str,
+    order_prefix: Option<&str>,
 ) -> String {
     let key = ident(&pipeline.file.key);
     // Derived features in layers: each layer adds those whose operands exist.
@@ -497,8 +498,12 @@ pub(crate) fn finish(
     // Final projection in declared order.
     let mut out = vec![key.clone(), "snapshot_date".to_string()];
     out.extend(pipeline.features.iter().map(|f| ident(&f.name)));
+    let order = match order_prefix {
+        Some(prefix) => format!(" ORDER BY {prefix}{key}"),
+        None => String::new(),
+    };
     format!(
-        "WITH {}\nSELECT {} FROM ({sql}) ORDER BY {order_prefix}{key}",
+        "WITH {}\nSELECT {} FROM ({sql}){order}",
         ctes.join(",\n"),
         out.join(", ")
     )

@@ -1672,7 +1672,7 @@ pub fn tiled_snapshot_query(
         layer0.push(feature_column(f, *agg, &v));
     }
     join_source_aggregates(&per_source, &mut ctes, &mut joins);
-    let sql = finish(pipeline, &ctes, &layer0, &joins, "");
+    let sql = finish(pipeline, &ctes, &layer0, &joins, Some(""));
     crate::sql::SnapshotQuery {
         day,
         cutoff: naive.cutoff,
