@@ -701,166 +701,198 @@ pub async fn plan_day(
     mode: KnowledgeOverride,
 ) -> Result<(BTreeMap<String, TileStats>, DayPlan), BuildError> {
     let naive = crate::sql::snapshot_query(pipeline, day, mode);
-    let last = day - Duration::days(1);
-    let stable = day - Duration::days(2);
+    // Each source's pieces are planned on their own (their tiles, roll-ups and tables are
+    // the source's), side by side: the roll-ups a backfill builds for the next day are a
+    // few small queries per source, each using about one core (docs/benchmarks.md,
+    // twenty-third measurement). One at a time under a memory limit, as measured there.
+    let planned = layouts.iter().filter_map(|(name, layout)| {
+        let read = naive.reads.get(name)?;
+        Some(async move {
+            let planned = plan_source(ctx, pipeline, &reports[name], layout, out, day, read).await;
+            (name.clone(), planned)
+        })
+    });
+    let results = if memory_limited(ctx) {
+        let mut results = Vec::new();
+        for p in planned {
+            results.push(p.await);
+        }
+        results
+    } else {
+        // Every source runs to its end before an error is returned, so none is left
+        // half-way through writing.
+        futures::future::join_all(planned).await
+    };
     let mut plan = DayPlan {
         day,
         sources: BTreeMap::new(),
     };
     let mut all_stats = BTreeMap::new();
-    for (name, layout) in layouts {
-        let Some(read) = naive.reads.get(name) else {
-            continue;
-        };
-        let report = &reports[name];
-        let Some(first_partition) = report.listing.days.keys().next().copied() else {
-            plan.sources.insert(name.clone(), Pieces::default());
-            all_stats.insert(name.clone(), TileStats::default());
-            continue;
-        };
-        let mut cur = Current {
-            ctx,
-            pipeline,
-            report,
-            layout,
-            out,
-            day,
-            stats: TileStats::default(),
-            checked: BTreeMap::new(),
-            registered: false,
-        };
-        // An as-known snapshot may use a roll-up only if all its rows had arrived.
-        let usable_by_day = |st: &Stored| {
-            read.knowledge == Knowledge::EventTime || st.max_arrival.is_none_or(|a| a <= last)
-        };
-        // Rows of a partition have event days from the day before it to the day after.
-        let floor = first_partition - Duration::days(1);
-        let (starts, unbounded) = window_starts(pipeline, name, day);
-        let mut lo = match starts.first() {
-            Some(s) if !unbounded => (*s).max(floor),
-            _ => floor,
-        };
-        // Features without a window start read the history up to a month's end in one
-        // piece, then the pieces after it. An as-known snapshot cannot use a history
-        // holding rows that arrived after its cutoff (in the first days of a month, the
-        // late rows of the month before): it tries the month before, then reads months.
-        let mut history = None;
-        let mut candidate = history_span(&starts, floor, stable)
-            .filter(|_| unbounded && !unbounded_distinct(pipeline, name));
-        for _ in 0..2 {
-            let Some(span) = candidate else { break };
-            if usable_by_day(&cur.history(span, floor).await?) {
-                history = Some(span);
-                lo = span.last() + Duration::days(1);
-                break;
-            }
-            candidate = earlier_history(span, floor);
-        }
-        // Spans known: None = stored but not usable by this snapshot.
-        let mut known: BTreeMap<Span, Option<Stored>> = BTreeMap::new();
-        let pieces = loop {
-            let usable = |s: Span| match known.get(&s) {
-                None => true,
-                Some(None) => false,
-                Some(Some(_)) => true,
-            };
-            let pieces = if lo <= last {
-                cut(&starts, lo, last, stable, &usable)
-            } else {
-                Pieces::default()
-            };
-            let wanted: BTreeSet<Span> = pieces
-                .spans
-                .iter()
-                .filter(|s| !known.contains_key(s))
-                .copied()
-                .collect();
-            if wanted.is_empty() {
-                break pieces;
-            }
-            for level in [Level::Month, Level::Week] {
-                let spans: Vec<Span> = wanted
-                    .iter()
-                    .filter(|s| s.level == level)
-                    .copied()
-                    .collect();
-                if spans.is_empty() {
-                    continue;
-                }
-                let found = cur.spans(level, &spans).await?;
-                for span in spans {
-                    known.insert(
-                        span,
-                        found.get(&span).filter(|st| usable_by_day(st)).copied(),
-                    );
-                }
-            }
-        };
-        let mut pieces = pieces;
-        pieces.spans.splice(0..0, history);
-        let Current {
-            mut stats,
-            mut checked,
-            mut registered,
-            ..
-        } = cur;
-        // Tiles of the partitions the day pieces read, then the markers of every other
-        // partition the day depends on: rows ignored (null key) or suspicious (clock skew)
-        // are reported whatever their event day (a row stamped years ahead sits in no
-        // window). Tiles only checked for their counts are not counted as reused.
-        let read_parts: BTreeSet<NaiveDate> = pieces
-            .days
-            .iter()
-            .flat_map(|d| {
-                report
-                    .listing
-                    .days
-                    .range(*d - Duration::days(1)..=*d + Duration::days(1))
-                    .map(|(p, _)| *p)
-            })
-            .filter(|d| !checked.contains_key(d))
-            .collect();
-        let counted_parts: BTreeSet<NaiveDate> = report
-            .listing
-            .days
-            .range(..=day)
-            .map(|(p, _)| *p)
-            .filter(|p| read.first_day.is_none_or(|f| *p >= f))
-            .filter(|d| !checked.contains_key(d) && !read_parts.contains(d))
-            .collect();
-        for (parts, tiles_read) in [(read_parts, true), (counted_parts, false)] {
-            if parts.is_empty() {
-                continue;
-            }
-            let (mut s, counts) =
-                crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
-            if !tiles_read {
-                s.partitions_reused = 0;
-            }
-            stats.add(&s);
-            registered &= s.partitions_built == 0;
-            checked.extend(counts);
-        }
-        if !registered {
-            register_tables(ctx, pipeline, out, layout, None, day).await?;
-        }
-        pieces.float_sums = float_sums(ctx, layout).await;
-        for level in LEVELS {
-            if pieces.spans.iter().any(|s| s.level == level) {
-                register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
-            }
-        }
-        register_scoped(ctx, pipeline, out, layout, &pieces, day).await?;
-        pieces.scoped = true;
-        let mut ignored = Ignored::default();
-        for (_, n) in checked.range(read.first_day.unwrap_or(NaiveDate::MIN)..=day) {
-            ignored.add(n);
-        }
-        stats.ignored = ignored;
+    for (name, planned) in results {
+        let (pieces, stats) = planned?;
         plan.sources.insert(name.clone(), pieces);
-        all_stats.insert(name.clone(), stats);
+        all_stats.insert(name, stats);
     }
     Ok((all_stats, plan))
+}
+
+/// [`plan_day`] for one source, which `read` tells how the snapshot reads: its pieces
+/// (roll-ups and tiles built and registered as needed) and what they cost.
+async fn plan_source(
+    ctx: &SessionContext,
+    pipeline: &Pipeline,
+    report: &SourceReport,
+    layout: &TileLayout,
+    out: &Location,
+    day: NaiveDate,
+    read: &crate::sql::SourceRead,
+) -> Result<(Pieces, TileStats), BuildError> {
+    let last = day - Duration::days(1);
+    let stable = day - Duration::days(2);
+    let name = &layout.source;
+    let Some(first_partition) = report.listing.days.keys().next().copied() else {
+        return Ok((Pieces::default(), TileStats::default()));
+    };
+    let mut cur = Current {
+        ctx,
+        pipeline,
+        report,
+        layout,
+        out,
+        day,
+        stats: TileStats::default(),
+        checked: BTreeMap::new(),
+        registered: false,
+    };
+    // An as-known snapshot may use a roll-up only if all its rows had arrived.
+    let usable_by_day = |st: &Stored| {
+        read.knowledge == Knowledge::EventTime || st.max_arrival.is_none_or(|a| a <= last)
+    };
+    // Rows of a partition have event days from the day before it to the day after.
+    let floor = first_partition - Duration::days(1);
+    let (starts, unbounded) = window_starts(pipeline, name, day);
+    let mut lo = match starts.first() {
+        Some(s) if !unbounded => (*s).max(floor),
+        _ => floor,
+    };
+    // Features without a window start read the history up to a month's end in one
+    // piece, then the pieces after it. An as-known snapshot cannot use a history
+    // holding rows that arrived after its cutoff (in the first days of a month, the
+    // late rows of the month before): it tries the month before, then reads months.
+    let mut history = None;
+    let mut candidate = history_span(&starts, floor, stable)
+        .filter(|_| unbounded && !unbounded_distinct(pipeline, name));
+    for _ in 0..2 {
+        let Some(span) = candidate else { break };
+        if usable_by_day(&cur.history(span, floor).await?) {
+            history = Some(span);
+            lo = span.last() + Duration::days(1);
+            break;
+        }
+        candidate = earlier_history(span, floor);
+    }
+    // Spans known: None = stored but not usable by this snapshot.
+    let mut known: BTreeMap<Span, Option<Stored>> = BTreeMap::new();
+    let pieces = loop {
+        let usable = |s: Span| match known.get(&s) {
+            None => true,
+            Some(None) => false,
+            Some(Some(_)) => true,
+        };
+        let pieces = if lo <= last {
+            cut(&starts, lo, last, stable, &usable)
+        } else {
+            Pieces::default()
+        };
+        let wanted: BTreeSet<Span> = pieces
+            .spans
+            .iter()
+            .filter(|s| !known.contains_key(s))
+            .copied()
+            .collect();
+        if wanted.is_empty() {
+            break pieces;
+        }
+        for level in [Level::Month, Level::Week] {
+            let spans: Vec<Span> = wanted
+                .iter()
+                .filter(|s| s.level == level)
+                .copied()
+                .collect();
+            if spans.is_empty() {
+                continue;
+            }
+            let found = cur.spans(level, &spans).await?;
+            for span in spans {
+                known.insert(
+                    span,
+                    found.get(&span).filter(|st| usable_by_day(st)).copied(),
+                );
+            }
+        }
+    };
+    let mut pieces = pieces;
+    pieces.spans.splice(0..0, history);
+    let Current {
+        mut stats,
+        mut checked,
+        mut registered,
+        ..
+    } = cur;
+    // Tiles of the partitions the day pieces read, then the markers of every other
+    // partition the day depends on: rows ignored (null key) or suspicious (clock skew)
+    // are reported whatever their event day (a row stamped years ahead sits in no
+    // window). Tiles only checked for their counts are not counted as reused.
+    let read_parts: BTreeSet<NaiveDate> = pieces
+        .days
+        .iter()
+        .flat_map(|d| {
+            report
+                .listing
+                .days
+                .range(*d - Duration::days(1)..=*d + Duration::days(1))
+                .map(|(p, _)| *p)
+        })
+        .filter(|d| !checked.contains_key(d))
+        .collect();
+    let counted_parts: BTreeSet<NaiveDate> = report
+        .listing
+        .days
+        .range(..=day)
+        .map(|(p, _)| *p)
+        .filter(|p| read.first_day.is_none_or(|f| *p >= f))
+        .filter(|d| !checked.contains_key(d) && !read_parts.contains(d))
+        .collect();
+    for (parts, tiles_read) in [(read_parts, true), (counted_parts, false)] {
+        if parts.is_empty() {
+            continue;
+        }
+        let (mut s, counts) =
+            crate::tiles::ensure_tiles(ctx, pipeline, report, layout, out, &parts).await?;
+        if !tiles_read {
+            s.partitions_reused = 0;
+        }
+        stats.add(&s);
+        registered &= s.partitions_built == 0;
+        checked.extend(counts);
+    }
+    if !registered {
+        register_tables(ctx, pipeline, out, layout, None, day).await?;
+    }
+    pieces.float_sums = float_sums(ctx, layout).await;
+    for level in LEVELS {
+        if pieces.spans.iter().any(|s| s.level == level) {
+            register_tables(ctx, pipeline, out, layout, Some(level), day).await?;
+        }
+    }
+    register_scoped(ctx, pipeline, out, layout, &pieces, day).await?;
+    pieces.scoped = true;
+    let mut ignored = Ignored::default();
+    for (_, n) in checked.range(read.first_day.unwrap_or(NaiveDate::MIN)..=day) {
+        ignored.add(n);
+    }
+    stats.ignored = ignored;
+    Ok((pieces, stats))
 }
 
 /// The stored levels, in the order pieces read them.
