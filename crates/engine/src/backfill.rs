@@ -1202,15 +1202,13 @@ pub async fn build_range(
     )
     .await
     .map_err(engine(first))?;
-    let limited = matches!(
-        ctx.runtime_env().memory_pool.memory_limit(),
-        datafusion::execution::memory_pool::MemoryLimit::Finite(_)
-    );
-    let (schema, mut stream) = if ranges.len() <= 1 && !limited && direct_features(pipeline, &types)
-    {
-        // Windowed totals without the query's final sort, put in order here
-        // ([`crate::by_day`]). The sorted rows were all held by the sort as well; under a
-        // memory limit the query sorts them, within the memory pool, as it did.
+    // Windowed totals in one query without a memory limit come without the query's final
+    // sort and are put in order here ([`crate::by_day`]); the sort held all the rows as
+    // well. Under a memory limit the query sorts them within the memory pool.
+    let by_day = ranges.len() <= 1
+        && !crate::session::memory_limited(ctx)
+        && direct_features(pipeline, &types);
+    let (schema, mut stream) = if ranges.len() <= 1 {
         let sql = range_sql(
             pipeline,
             layouts,
@@ -1219,7 +1217,7 @@ pub async fn build_range(
             mode,
             &types,
             &KeyRange::all(),
-            false,
+            !by_day,
         );
         let plan = ctx
             .sql(&sql)
@@ -1229,32 +1227,21 @@ pub async fn build_range(
             .await
             .map_err(engine(first))?;
         let schema = plan.schema();
-        let batches = datafusion::physical_plan::collect(plan, ctx.task_ctx())
-            .await
-            .map_err(engine(first))?;
-        let key = schema
-            .index_of(&pipeline.file.key)
-            .map_err(|e| engine(first)(e.into()))?;
-        let date = schema
-            .index_of("snapshot_date")
-            .map_err(|e| engine(first)(e.into()))?;
-        let rows =
-            crate::by_day::ByDay::new(schema.clone(), batches, key, date).map_err(engine(first))?;
-        let ahead = ctx.state().config().target_partitions();
-        (schema, rows.into_stream(ahead))
-    } else if ranges.len() <= 1 {
-        let sql = range_query(
-            pipeline,
-            layouts,
-            first,
-            last,
-            mode,
-            &types,
-            &KeyRange::all(),
-        );
-        let df = ctx.sql(&sql).await.map_err(engine(first))?;
-        let stream = df.execute_stream().await.map_err(engine(first))?;
-        (stream.schema(), stream.boxed())
+        if by_day {
+            let batches = datafusion::physical_plan::collect(plan, ctx.task_ctx())
+                .await
+                .map_err(engine(first))?;
+            let column = |name: &str| schema.index_of(name).map_err(|e| engine(first)(e.into()));
+            let (key, date) = (column(&pipeline.file.key)?, column("snapshot_date")?);
+            let rows = crate::by_day::ByDay::new(schema.clone(), batches, key, date)
+                .map_err(engine(first))?;
+            let ahead = ctx.state().config().target_partitions();
+            (schema, rows.into_stream(ahead))
+        } else {
+            let stream = datafusion::physical_plan::execute_stream(plan, ctx.task_ctx())
+                .map_err(engine(first))?;
+            (schema, stream.boxed())
+        }
     } else {
         let queries = ranges
             .iter()
@@ -1283,9 +1270,9 @@ pub async fn build_range(
         // beside them). Under a memory limit, one day at a time as before: each day's
         // writer holds its encoded row group until it closes, and the memory measured
         // under a limit (docs/benchmarks.md) was measured that way.
-        side_by_side: match ctx.runtime_env().memory_pool.memory_limit() {
-            datafusion::execution::memory_pool::MemoryLimit::Finite(_) => 0,
-            _ => ctx.state().config().target_partitions().max(1),
+        side_by_side: match crate::session::memory_limited(ctx) {
+            true => 0,
+            false => ctx.state().config().target_partitions().max(1),
         },
     };
     let mut pending = first.iter_days().take_while(|d| *d <= last).peekable();

@@ -32,6 +32,7 @@
 //! (their source reads months as before).
 
 use crate::build::{child, BuildError};
+use crate::session::memory_limited;
 use crate::sources::SourceReport;
 use crate::sql::{ident, literal, KnowledgeOverride};
 use crate::tiles::{stored_once, Ignored, TileLayout, TileStats};
@@ -513,15 +514,6 @@ fn spans_per_query(ctx: &SessionContext, stale: usize) -> usize {
     } else {
         stale.max(1)
     }
-}
-
-/// Whether the session runs under a memory limit.
-fn memory_limited(ctx: &SessionContext) -> bool {
-    use datafusion::execution::memory_pool::MemoryLimit;
-    matches!(
-        ctx.runtime_env().memory_pool.memory_limit(),
-        MemoryLimit::Finite(_)
-    )
 }
 
 /// The roll-up rows of tile rows `rows` (which carry the day tiles' columns and `__part`,

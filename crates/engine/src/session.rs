@@ -310,6 +310,14 @@ impl MemoryPool for OverdraftPool {
     }
 }
 
+/// Whether the session runs under a memory limit.
+pub(crate) fn memory_limited(ctx: &SessionContext) -> bool {
+    matches!(
+        ctx.runtime_env().memory_pool.memory_limit(),
+        MemoryLimit::Finite(_)
+    )
+}
+
 /// Hands the memory the allocator keeps after a query back to the system. glibc keeps
 /// freed memory in its per-thread arenas, and a memory-limited backfill runs hundreds of
 /// queries one after the other: between them the process stayed near the highest
