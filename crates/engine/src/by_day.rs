@@ -25,7 +25,7 @@ pub struct ByDay {
     /// Each column, as the arrays of every batch.
     columns: Arc<Vec<Vec<ArrayRef>>>,
     /// (batch, row) of the rows of each day with rows, in key order.
-    days: std::vec::IntoIter<Vec<(usize, usize)>>,
+    days: Vec<Vec<(usize, usize)>>,
 }
 
 impl ByDay {
@@ -100,11 +100,7 @@ impl ByDay {
         Ok(ByDay {
             schema,
             columns,
-            days: days
-                .into_iter()
-                .filter(|d| !d.is_empty())
-                .collect::<Vec<_>>()
-                .into_iter(),
+            days: days.into_iter().filter(|d| !d.is_empty()).collect(),
         })
     }
 }
@@ -139,16 +135,6 @@ fn gather(
         })
         .collect::<std::result::Result<Vec<ArrayRef>, _>>()?;
     Ok(RecordBatch::try_new(schema.clone(), columns)?)
-}
-
-impl Iterator for ByDay {
-    type Item = Result<RecordBatch>;
-
-    /// The rows of the next day with rows.
-    fn next(&mut self) -> Option<Self::Item> {
-        let rows = self.days.next()?;
-        Some(gather(&self.schema, &self.columns, &rows))
-    }
 }
 
 #[cfg(test)]
@@ -193,8 +179,8 @@ mod tests {
     /// The same rows as a plain sort by (day, key, nulls last) gives them, one batch per
     /// day: keys out of order, a key's days cut by a batch boundary, a null key, a day
     /// with no rows between two days, and an empty batch.
-    #[test]
-    fn rows_come_by_day_then_key() {
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn rows_come_by_day_then_key() {
         let schema: SchemaRef = Arc::new(Schema::new(vec![
             Field::new("k", DataType::Utf8, true),
             Field::new("snapshot_date", DataType::Date32, false),
@@ -219,6 +205,10 @@ mod tests {
         expected.sort_by(|a, b| (a.1, a.0.is_none(), &a.0).cmp(&(b.1, b.0.is_none(), &b.0)));
         let out: Vec<RecordBatch> = ByDay::new(schema.clone(), input, 0, 1)
             .unwrap()
+            .into_stream(2)
+            .collect::<Vec<_>>()
+            .await
+            .into_iter()
             .collect::<Result<_>>()
             .unwrap();
         assert_eq!(out.len(), 3, "days 10, 11 and 13");
