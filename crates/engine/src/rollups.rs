@@ -431,13 +431,19 @@ fn marker_path(dir: &StorePath, span: Span) -> StorePath {
 
 /// What a span's roll-up depends on: the raw files of the partitions it covers.
 fn span_inputs(report: &SourceReport, span: Span) -> String {
-    let files: Vec<serde_json::Value> = report
-        .listing
-        .days
-        .range(span_range(span))
-        .map(|(d, files)| json!([d.to_string(), crate::tiles::fingerprint(files)]))
-        .collect();
-    hash_value(&json!([ROLLUP_FORMAT, files]))
+    // The canonical JSON of `[ROLLUP_FORMAT, [[day, fingerprint(files)], ...]]`, written
+    // directly (`span_inputs_are_the_hash_of_their_value` holds it to that value's hash).
+    let mut text = format!("[{ROLLUP_FORMAT},[").into_bytes();
+    for (i, (d, files)) in report.listing.days.range(span_range(span)).enumerate() {
+        if i > 0 {
+            text.push(b',');
+        }
+        text.extend_from_slice(format!("[\"{d}\",").as_bytes());
+        crate::tiles::write_fingerprint(files, &mut text);
+        text.push(b']');
+    }
+    text.extend_from_slice(b"]]");
+    daymark_spec::hash::hash_canonical(&text)
 }
 
 /// The partitions holding a span's rows: its days and one more each side (rows are filed
@@ -1458,6 +1464,67 @@ mod tests {
 
     fn d(s: &str) -> NaiveDate {
         s.parse().unwrap()
+    }
+
+    /// Raw files whose names and tags need JSON escapes (quote, backslash, a control
+    /// character, non-ASCII), with and without an entity tag.
+    fn odd_files(day: &str) -> Vec<daymark_store::DataFile> {
+        let at = |s: &str| chrono::DateTime::parse_from_rfc3339(s).unwrap().to_utc();
+        vec![
+            daymark_store::DataFile {
+                path: StorePath::from(format!("ev/dt={day}/a \"q\" \\ é\u{1}.parquet")),
+                size: 12_345,
+                modified: at("2026-03-08T08:00:00.123456789Z"),
+                etag: Some("\"tag/1\"".into()),
+            },
+            daymark_store::DataFile {
+                path: StorePath::from(format!("ev/dt={day}/b.parquet")),
+                size: 0,
+                modified: at("2026-03-09T00:00:00Z"),
+                etag: None,
+            },
+        ]
+    }
+
+    /// The hashes written directly equal those of the JSON values they stand for (so
+    /// markers written before they were written directly stay current).
+    #[test]
+    fn span_inputs_are_the_hash_of_their_value() {
+        let mut listing = daymark_store::Listing::default();
+        for day in ["2026-03-07", "2026-03-08", "2026-03-09"] {
+            listing.days.insert(d(day), odd_files(day));
+        }
+        listing.days.insert(d("2026-03-10"), Vec::new());
+        let report = SourceReport {
+            name: "ev".into(),
+            location: None,
+            listing,
+            schema: None,
+            rows: 0,
+            problems: Vec::new(),
+            footer_reads: Default::default(),
+        };
+        let span = Span {
+            level: Level::Week,
+            first: d("2026-03-09"),
+        };
+        let value: Vec<serde_json::Value> = report
+            .listing
+            .days
+            .range(span_range(span))
+            .map(|(d, files)| serde_json::json!([d.to_string(), crate::tiles::fingerprint(files)]))
+            .collect();
+        assert_eq!(value.len(), 3, "08 (the day before), 09 and 10");
+        assert_eq!(
+            span_inputs(&report, span),
+            hash_value(&serde_json::json!([ROLLUP_FORMAT, value]))
+        );
+        for files in [odd_files("2026-03-08"), Vec::new()] {
+            assert_eq!(
+                crate::tiles::fingerprint_hash(&files),
+                hash_value(&crate::tiles::fingerprint(&files))
+            );
+        }
     }
 
     fn week(s: &str) -> Span {

@@ -48,7 +48,14 @@ fn write_canonical(v: &Value, out: &mut String) {
 
 /// SHA-256 of the canonical JSON of `v`, as 64 hex digits.
 pub fn hash_value(v: &Value) -> String {
-    hex::encode(Sha256::digest(canonical_json(v).as_bytes()))
+    hash_canonical(canonical_json(v).as_bytes())
+}
+
+/// SHA-256 of text that is already canonical JSON, as 64 hex digits: what [`hash_value`]
+/// gives for the value that text stands for. For callers that write a large value's
+/// canonical form directly instead of building it as a [`Value`] first.
+pub fn hash_canonical(text: &[u8]) -> String {
+    hex::encode(Sha256::digest(text))
 }
 
 fn without_key(mut v: Value, key: &str) -> Value {
