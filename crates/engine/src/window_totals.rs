@@ -623,6 +623,63 @@ impl Grouped {
     }
 }
 
+/// One key's tile rows, copied out of a [`Grouped`] next to each other (a buffer reused
+/// from key to key).
+#[derive(Default)]
+struct KeyRows {
+    tn: Vec<i64>,
+    vn: Vec<i64>,
+    /// `slots` values per row, as in [`Arrived::x`].
+    x: Vec<i128>,
+}
+
+/// Rows this far ahead are asked for while one is copied ([`KeyRows::gather`]).
+const PREFETCH_AHEAD: usize = 16;
+
+impl KeyRows {
+    /// Copies group `g`'s tile rows, in arrival order. A key's rows lie one per tile file
+    /// across the whole grouping (hundreds of megabytes in a backfill), so nearly every
+    /// row read is a cache miss; reading them where they are, once per output, was about
+    /// a fifth of computing the totals (docs/benchmarks.md, twenty-fourth measurement).
+    /// The rows a little ahead are fetched while one is copied, so that the misses
+    /// overlap; the order across groups is followed, so the next key's first rows are
+    /// fetched too.
+    fn gather(&mut self, keys: &Grouped, g: usize) {
+        let (rows, slots) = (&keys.rows, keys.slots);
+        let (from, to) = (keys.starts[g], keys.starts[g + 1]);
+        self.tn.clear();
+        self.vn.clear();
+        self.x.clear();
+        for (i, &r) in keys.order[from..to].iter().enumerate() {
+            if let Some(&ahead) = keys.order.get(from + i + PREFETCH_AHEAD) {
+                let a = ahead as usize;
+                prefetch(rows.tn.as_ptr().wrapping_add(a));
+                prefetch(rows.vn.as_ptr().wrapping_add(a));
+                prefetch(rows.x.as_ptr().wrapping_add(a * slots));
+            }
+            let r = r as usize;
+            self.tn.push(rows.tn[r]);
+            self.vn.push(rows.vn[r]);
+            self.x.extend_from_slice(&rows.x[r * slots..(r + 1) * slots]);
+        }
+    }
+}
+
+/// Asks the processor to bring the cache line at `p` in (a hint only: it never faults,
+/// whatever the address, and does nothing on other processors).
+#[inline(always)]
+fn prefetch<T>(p: *const T) {
+    #[cfg(target_arch = "x86_64")]
+    // SAFETY: a prefetch reads nothing the program sees and cannot fault; SSE, which it
+    // needs, is part of every x86-64 processor.
+    #[allow(unused_unsafe)]
+    unsafe {
+        std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(p.cast::<i8>());
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = p;
+}
+
 /// The accumulator of [`WINDOW_TOTALS`] for all keys of a grouping.
 #[derive(Debug)]
 struct KeyTotals {
@@ -793,23 +850,28 @@ impl GroupsAccumulator for KeyTotals {
         let mut rows: Vec<Vec<TileRow>> = sets.iter().map(|_| Vec::new()).collect();
         let mut scratch = Scratch::default();
         let mut order: Vec<u32> = Vec::new();
+        let mut local = KeyRows::default();
+        let slots = keys.slots;
         for (g, days) in key_days.into_iter().enumerate() {
-            // Tile rows in event-day order (arrival order among equal days), shared by
-            // all outputs.
+            // The key's tile rows, copied next to each other first: they arrived spread
+            // over the whole grouping, one per tile file.
+            local.gather(&keys, g);
+            // Then in event-day order (arrival order among equal days), shared by all
+            // outputs.
             order.clear();
-            order.extend_from_slice(keys.tiles(g));
-            let tn = &keys.rows.tn;
-            if !order.is_sorted_by_key(|&r| tn[r as usize]) {
+            order.extend(0..local.tn.len() as u32);
+            let tn = &local.tn;
+            if !tn.is_sorted() {
                 order.sort_by_key(|&r| tn[r as usize]);
             }
             for (&(slot, positive), rows) in sets.iter().zip(rows.iter_mut()) {
                 rows.clear();
                 rows.extend(order.iter().filter_map(|&r| {
                     let r = r as usize;
-                    let x = keys.x(r)[slot];
+                    let x = local.x[r * slots + slot];
                     (x != NULL_X && (!positive || x > 0)).then_some(TileRow {
                         tn: tn[r],
-                        vn: keys.rows.vn[r],
+                        vn: local.vn[r],
                         x,
                     })
                 }));
