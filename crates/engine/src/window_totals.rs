@@ -660,7 +660,8 @@ impl KeyRows {
             let r = r as usize;
             self.tn.push(rows.tn[r]);
             self.vn.push(rows.vn[r]);
-            self.x.extend_from_slice(&rows.x[r * slots..(r + 1) * slots]);
+            self.x
+                .extend_from_slice(&rows.x[r * slots..(r + 1) * slots]);
         }
     }
 }
@@ -668,7 +669,7 @@ impl KeyRows {
 /// Asks the processor to bring the cache line at `p` in (a hint only: it never faults,
 /// whatever the address, and does nothing on other processors).
 #[inline(always)]
-fn prefetch<T>(p: *const T) {
+pub(crate) fn prefetch<T>(p: *const T) {
     #[cfg(target_arch = "x86_64")]
     // SAFETY: a prefetch reads nothing the program sees and cannot fault; SSE, which it
     // needs, is part of every x86-64 processor.
