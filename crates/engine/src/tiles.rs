@@ -256,7 +256,8 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
 }
 
 /// The de-duplicated rows of partitions `days` of `source`, with `__part` (the partition,
-/// as text), `__key`, `__t`, `__a`. Duplicates are looked for within a partition, as the
+/// as a date: the condition on the partitions keeps only names of that form; a date sorts,
+/// groups and compares more cheaply than its text), `__key`, `__t`, `__a`. Duplicates are looked for within a partition, as the
 /// daily build of one partition would. `names_are_dates`: see
 /// [`crate::sql::partition_condition`].
 fn rows_sql(
@@ -270,7 +271,7 @@ fn rows_sql(
     let arr = source.spec.arrival_time.as_ref().map(|a| ident(a));
     let dp = ident(&source.spec.day_partition);
     let base = format!(
-        "SELECT *, {} AS __key, CAST({dp} AS VARCHAR) AS __part FROM {} WHERE {}",
+        "SELECT *, {} AS __key, CAST({dp} AS DATE) AS __part FROM {} WHERE {}",
         ident(&source.key),
         ident(&source.name),
         crate::sql::partition_condition(&dp, &days.iter().copied().collect(), names_are_dates),
@@ -779,9 +780,15 @@ impl Split {
         let counted = ["__key", "__rows", "__ahead"].map(|c| main.schema.index_of(c).ok());
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine)?;
-            let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Utf8)
+            // The partition of each row as a day number (a date column as it is, text
+            // parsed once per run of equal values).
+            let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Date32)
                 .map_err(|e| engine(e.into()))?;
-            let parts = parts.as_string::<i32>();
+            let parts = parts.as_primitive::<datafusion::arrow::datatypes::Date32Type>();
+            if parts.null_count() > 0 {
+                return Err(internal("a tile row without a partition".into()));
+            }
+            let parts = parts.values();
             let body = match &main.shape {
                 Shape::Columns(keep) => batch.project(keep).map_err(|e| engine(e.into()))?,
                 Shape::Unnest { .. } => return Err(internal("the main tile is unnested".into())),
@@ -805,13 +812,10 @@ impl Split {
                     Shape::Columns(_) => None,
                 });
             }
-            for run in
-                crate::build::equal_runs(batch.num_rows(), |a, b| parts.value(a) == parts.value(b))
-            {
-                let text = parts.value(run.start);
-                let day: NaiveDate = text
-                    .parse()
-                    .map_err(|_| internal(format!("tile partition {text:?} is not a date")))?;
+            for run in crate::build::equal_runs(batch.num_rows(), |a, b| parts[a] == parts[b]) {
+                let n = parts[run.start];
+                let day = datafusion::arrow::datatypes::Date32Type::to_naive_date_opt(n)
+                    .ok_or_else(|| internal(format!("tile partition {n} is not a date")))?;
                 if current.first().map(|w| w.day()) != Some(day) {
                     for w in current.drain(..) {
                         w.finish(None).await?;
