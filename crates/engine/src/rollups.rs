@@ -524,7 +524,8 @@ fn spans_per_query(ctx: &SessionContext, stale: usize) -> usize {
 
 /// The roll-up rows of tile rows `rows` (which carry the day tiles' columns and `__part`,
 /// the roll-up they belong to): per `__part` and key, `__lo` (the SQL of the piece's first
-/// day) and the [`columns`] `cols`.
+/// day) and the [`columns`] `cols`. In key order, as the day tiles are: the same tiles
+/// always give the same roll-up files.
 fn rollup_sql(cols: &[(String, String)], rows: &str, lo: &str) -> String {
     // With active days among the columns, rows are first combined per event day (see
     // `one_day_aggregates`), whose active days then add up.
@@ -547,7 +548,7 @@ fn rollup_sql(cols: &[(String, String)], rows: &str, lo: &str) -> String {
         (aggs, rows.to_string())
     };
     format!(
-        "SELECT __part, __key, {lo} AS __lo, {} FROM ({from}) GROUP BY __part, __key ORDER BY __part",
+        "SELECT __part, __key, {lo} AS __lo, {} FROM ({from}) GROUP BY __part, __key ORDER BY __part, __key",
         aggs.join(", ")
     )
 }
@@ -600,7 +601,7 @@ async fn build(
     .await?;
     for (i, _, _) in &layout.distinct {
         let sql = format!(
-            "SELECT DISTINCT __part, __key, __part AS __lo, __v FROM ({}) ORDER BY __part",
+            "SELECT DISTINCT __part, __key, __part AS __lo, __v FROM ({}) ORDER BY __part, __key, __v",
             rows(&layout.distinct_table(*i))
         );
         crate::tiles::write_split(
@@ -1111,7 +1112,7 @@ impl Current<'_> {
             ));
         }
         let sql = format!(
-            "SELECT {} AS __part, __key, {} AS __lo, {} FROM ({}) GROUP BY __key",
+            "SELECT {} AS __part, __key, {} AS __lo, {} FROM ({}) GROUP BY __key ORDER BY __key",
             date(span.first),
             date(floor),
             pieces_combined(&cols).join(", "),

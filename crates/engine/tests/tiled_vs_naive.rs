@@ -644,7 +644,7 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     )
     .await;
     assert!(!rolled, "05-15: every plays day is a day piece");
-    assert_tiles_sorted_by_key(&dir.path().join("out/tiles"));
+    assert_tiles_sorted_by_key(&dir.path().join("out/tiles"), false);
     let (stats, _, event_time) =
         daily(&ctx, &pipeline, &reports, &ls, &out, snapshot, event_mode).await;
     // The same partitions again: every marker comes from the folders' marker indexes.
@@ -655,6 +655,7 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
         daily(&ctx, &pipeline, &reports, &ls, &out, later, event_mode).await;
     assert!(rolled, "05-19: plays reads the week of 05-04 as a roll-up");
     assert!(stats["plays"].rollups_built >= 1, "{stats:?}");
+    assert_tiles_sorted_by_key(&dir.path().join("out/tiles"), true);
 
     // Re-deliver a whole on-time file of 2026-05-10 as if it had arrived now (a late file
     // with new ids: new events of that day that the daily run on 05-15 could not have seen).
@@ -730,10 +731,11 @@ async fn a_late_file_rebuilds_only_its_partition_and_changes_only_event_time_vie
     }
 }
 
-/// Every day tile and distinct-value tile under `tiles` (not the roll-ups) holds its rows
-/// in key order: a backfill cut into ranges of keys relies on it to skip the row groups of
-/// other ranges.
-fn assert_tiles_sorted_by_key(tiles: &Path) {
+/// Every day tile and distinct-value tile under `tiles` holds its rows in key order: a
+/// backfill cut into ranges of keys relies on it to skip the row groups of other ranges.
+/// With `rollups`, the roll-ups too (so the same tiles always give the same roll-up
+/// files), and there must be some.
+fn assert_tiles_sorted_by_key(tiles: &Path, rollups: bool) {
     use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
     let mut files = Vec::new();
     let mut dirs = vec![tiles.to_path_buf()];
@@ -743,13 +745,20 @@ fn assert_tiles_sorted_by_key(tiles: &Path) {
             if p.is_dir() {
                 dirs.push(p);
             } else if p.extension().is_some_and(|x| x == "parquet")
-                && !p.to_string_lossy().contains("-r")
+                && (rollups || !p.to_string_lossy().contains("-r"))
             {
                 files.push(p);
             }
         }
     }
     assert!(files.len() > 20, "{} tile files", files.len());
+    if rollups {
+        let rolled = files
+            .iter()
+            .filter(|f| f.to_string_lossy().contains("-r"))
+            .count();
+        assert!(rolled > 0, "no roll-up files");
+    }
     let mut checked_rows = 0;
     for f in files {
         let reader = ParquetRecordBatchReaderBuilder::try_new(std::fs::File::open(&f).unwrap())
