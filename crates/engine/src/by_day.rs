@@ -345,7 +345,7 @@ mod tests {
     /// The same rows as a plain sort by (day, key, nulls last) gives them, one batch per
     /// day: keys out of order, a key's days cut by a batch boundary, a null key, a day
     /// with no rows between two days, an empty batch, a NULL value, a key whose days go
-    /// down within a run, and days more than one gathered block apart.
+    /// down within a run, and more days than one gathered block holds.
     #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
     async fn rows_come_by_day_then_key() {
         let schema: SchemaRef = Arc::new(Schema::new(vec![

@@ -256,10 +256,10 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
 }
 
 /// The de-duplicated rows of partitions `days` of `source`, with `__part` (the partition,
-/// as a date: the condition on the partitions keeps only names of that form; a date sorts,
-/// groups and compares more cheaply than its text), `__key`, `__t`, `__a`. Duplicates are looked for within a partition, as the
-/// daily build of one partition would. `names_are_dates`: see
-/// [`crate::sql::partition_condition`].
+/// as a date: the condition on the partitions keeps only names of that form, and a date
+/// sorts, groups and compares more cheaply than its text), `__key`, `__t`, `__a`.
+/// Duplicates are looked for within a partition, as the daily build of one partition
+/// would. `names_are_dates`: see [`crate::sql::partition_condition`].
 fn rows_sql(
     pipeline: &Pipeline,
     source: &Source,
@@ -780,8 +780,8 @@ impl Split {
         let counted = ["__key", "__rows", "__ahead"].map(|c| main.schema.index_of(c).ok());
         while let Some(batch) = stream.next().await {
             let batch = batch.map_err(engine)?;
-            // The partition of each row as a day number (a date column as it is, text
-            // parsed once per run of equal values).
+            // The partition of each row as a day number (tile and roll-up queries give it
+            // as a date; text would be parsed by the cast).
             let parts = datafusion::arrow::compute::cast(batch.column(0), &DataType::Date32)
                 .map_err(|e| engine(e.into()))?;
             let parts = parts.as_primitive::<datafusion::arrow::datatypes::Date32Type>();
@@ -993,7 +993,7 @@ pub(crate) fn fingerprint(files: &[DataFile]) -> serde_json::Value {
 /// Appends the canonical JSON of [`fingerprint`]`(files)` to `out`, written directly: the
 /// same text (so the same hashes) without building the value. Daily builds hash the
 /// fingerprints of every raw file a roll-up covers, and building them as values first
-/// took about a tenth of a daily build (docs/benchmarks.md, twenty-fourth measurement).
+/// took about a sixth of a daily build (docs/benchmarks.md, twenty-fourth measurement).
 pub(crate) fn write_fingerprint(files: &[DataFile], out: &mut Vec<u8>) {
     // Keys in sorted order, as canonical JSON has them.
     let text = |out: &mut Vec<u8>, s: &str| {
@@ -1028,7 +1028,6 @@ pub(crate) fn fingerprint_hash(files: &[DataFile]) -> String {
     daymark_spec::hash::hash_canonical(&text)
 }
 
-/// Where the fingerprint of partition `day`'s tile is kept.
 /// SQL conditions selecting tile partitions `first..=last` (`dt`; no lower bound without
 /// `first`).
 pub(crate) fn partitions_between(first: Option<NaiveDate>, last: NaiveDate) -> Vec<String> {
@@ -1075,6 +1074,7 @@ pub(crate) fn first_last_of_partials(
     (func, order)
 }
 
+/// Where the fingerprint of partition `day`'s tile is kept.
 fn marker_path(layout: &TileLayout, out: &Location, day: NaiveDate) -> StorePath {
     child(&layout.dir(out), &[&format!("dt={day}"), "_inputs.json"])
 }
