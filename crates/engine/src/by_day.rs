@@ -168,8 +168,11 @@ fn gather(
     for (i, d) in block.iter().enumerate() {
         slot[(d - first) as usize] = i;
     }
-    // The stretch of each run in the block (runs are date-ascending), in key order.
+    // The stretch of each run in the block (runs are date-ascending), in key order, and
+    // the day (position in `block`) of each of their rows, in that order, found once for
+    // every column.
     let mut stretches: Vec<(usize, Range<usize>)> = Vec::new();
+    let mut days: Vec<usize> = Vec::new();
     let mut counts = vec![0usize; block.len()];
     for (b, r) in runs {
         let d = &dates[*b][r.clone()];
@@ -177,26 +180,28 @@ fn gather(
         let to = d.partition_point(|x| *x <= last);
         if from < to {
             for day in &d[from..to] {
-                counts[slot[(day - first) as usize]] += 1;
+                let i = slot[(day - first) as usize];
+                counts[i] += 1;
+                days.push(i);
             }
             stretches.push((*b, r.start + from..r.start + to));
         }
     }
-    let day_of = |b: usize, row: usize| slot[(dates[b][row] - first) as usize];
     // (batch, row) of each day's rows, in key order, for the columns gathered day by day.
     let mut rows: Option<Vec<Vec<(usize, usize)>>> = None;
     let mut out: Vec<Vec<ArrayRef>> = vec![Vec::with_capacity(columns.len()); block.len()];
     for (field, arrays) in schema.fields().iter().zip(columns) {
         let per_day = match field.data_type().primitive_width() {
-            Some(width) => copy_fixed(arrays, width, &stretches, &counts, day_of)?,
+            Some(width) => copy_fixed(arrays, width, &stretches, &days, &counts)?,
             None => {
                 let rows = rows.get_or_insert_with(|| {
                     let mut rows: Vec<Vec<(usize, usize)>> =
                         counts.iter().map(|n| Vec::with_capacity(*n)).collect();
-                    for (b, r) in &stretches {
-                        for row in r.clone() {
-                            rows[day_of(*b, row)].push((*b, row));
-                        }
+                    let all = stretches
+                        .iter()
+                        .flat_map(|(b, r)| r.clone().map(|row| (*b, row)));
+                    for (at, &day) in all.zip(&days) {
+                        rows[day].push(at);
                     }
                     rows
                 });
@@ -216,14 +221,14 @@ fn gather(
 }
 
 /// One fixed-width column (values of `width` bytes) of each day of a block, copied from
-/// `arrays` stretch by stretch: `stretches` in key order, `counts` rows per day, `day_of`
-/// the day (position in the block) of a row.
+/// `arrays` stretch by stretch: `stretches` in key order, `days` the day (position in the
+/// block) of each of their rows in that order, `counts` rows per day.
 fn copy_fixed(
     arrays: &[ArrayRef],
     width: usize,
     stretches: &[(usize, Range<usize>)],
+    days: &[usize],
     counts: &[usize],
-    day_of: impl Fn(usize, usize) -> usize,
 ) -> Result<Vec<ArrayRef>> {
     use datafusion::arrow::array::{make_array, ArrayData, NullBufferBuilder};
     use datafusion::arrow::buffer::Buffer;
@@ -242,11 +247,12 @@ fn copy_fixed(
     fn copy<const W: usize>(
         data: &[datafusion::arrow::array::ArrayData],
         stretches: &[(usize, Range<usize>)],
-        day_of: &impl Fn(usize, usize) -> usize,
+        days: &[usize],
         values: &mut [Vec<u8>],
         nulls: Option<&mut [NullBufferBuilder]>,
     ) {
         let mut nulls = nulls;
+        let mut days = days.iter();
         for (i, (b, r)) in stretches.iter().enumerate() {
             // The stretches lie far apart: the one a few ahead is fetched while this one
             // is copied.
@@ -257,8 +263,7 @@ fn copy_fixed(
             }
             let d = &data[*b];
             let bytes = &d.buffers()[0].as_slice()[d.offset() * W..];
-            for row in r.clone() {
-                let day = day_of(*b, row);
+            for (row, &day) in r.clone().zip(days.by_ref()) {
                 let value: [u8; W] = bytes[row * W..(row + 1) * W].try_into().unwrap_or([0; W]);
                 values[day].extend_from_slice(&value);
                 if let Some(n) = nulls.as_deref_mut() {
@@ -269,12 +274,12 @@ fn copy_fixed(
     }
     let n = nullable.then_some(&mut nulls[..]);
     match width {
-        1 => copy::<1>(&data, stretches, &day_of, &mut values, n),
-        2 => copy::<2>(&data, stretches, &day_of, &mut values, n),
-        4 => copy::<4>(&data, stretches, &day_of, &mut values, n),
-        8 => copy::<8>(&data, stretches, &day_of, &mut values, n),
-        16 => copy::<16>(&data, stretches, &day_of, &mut values, n),
-        32 => copy::<32>(&data, stretches, &day_of, &mut values, n),
+        1 => copy::<1>(&data, stretches, days, &mut values, n),
+        2 => copy::<2>(&data, stretches, days, &mut values, n),
+        4 => copy::<4>(&data, stretches, days, &mut values, n),
+        8 => copy::<8>(&data, stretches, days, &mut values, n),
+        16 => copy::<16>(&data, stretches, days, &mut values, n),
+        32 => copy::<32>(&data, stretches, days, &mut values, n),
         _ => {
             return Err(DataFusionError::Internal(format!(
                 "no copy for values of {width} bytes"
