@@ -4,7 +4,7 @@
 //! plans it and sends each stage's physical plan to executors, all as DataFusion's
 //! protobuf (`datafusion-proto`). Built-in functions travel by name and every process
 //! knows them. daymark's own functions ([`daymark_engine::functions`],
-//! [`daymark_engine::window_totals`]) travel with [`DaymarkCodec`]: each process that
+//! [`daymark_engine::window_totals`], [`daymark_engine::latest`]) travel with [`DaymarkCodec`]: each process that
 //! decodes a plan (scheduler, executors) takes it as its extension codec, and then needs
 //! nothing registered by hand.
 //!
@@ -51,8 +51,13 @@ pub fn window_function(name: &str) -> Option<Arc<WindowUDF>> {
 
 /// daymark's aggregate function called `name`, if it is one.
 pub fn aggregate_function(name: &str) -> Option<Arc<AggregateUDF>> {
-    let f = AggregateUDF::from(daymark_engine::window_totals::WindowTotalsAggregate::default());
-    (f.name() == name).then(|| Arc::new(f))
+    [
+        AggregateUDF::from(daymark_engine::window_totals::WindowTotalsAggregate::default()),
+        AggregateUDF::from(daymark_engine::latest::Latest::default()),
+    ]
+    .into_iter()
+    .find(|f| f.name() == name)
+    .map(Arc::new)
 }
 
 /// The extension codec for daymark's plans, logical and physical.
@@ -351,6 +356,37 @@ mod tests {
         assert_eq!(decoded.get("daymark_running_sum"), Some(&2), "{decoded:?}");
     }
 
+    /// `daymark_latest` in both aggregation phases, shipped as a cluster would ship it.
+    #[tokio::test]
+    async fn the_latest_value_aggregate_runs_after_protobuf() {
+        let planner = Arc::new(RoundTripPlanner::default());
+        let opts = daymark_engine::session::EngineOptions {
+            query_planner: Some(planner.clone() as _),
+            ..Default::default()
+        };
+        let ctx = daymark_engine::session::session(&opts).unwrap();
+        let sql = "SELECT k, daymark_latest(s, t, a) AS latest \
+                   FROM (VALUES (1, 'active', 2, 9), (1, 'paused', 1, 10), (2, 'b', 5, 6), \
+                   (2, 'a', 5, 7), (3, 'x', NULL, 1), (3, 'y', 4, 2)) AS r(k, s, t, a) \
+                   GROUP BY k ORDER BY k";
+        let batches = ctx.sql(sql).await.unwrap().collect().await.unwrap();
+        // Worked by hand: per k, the status of the greatest (t, a), a NULL t greatest.
+        let expected = "\
++---+--------+
+| k | latest |
++---+--------+
+| 1 | active |
+| 2 | a      |
+| 3 | x      |
++---+--------+";
+        assert_eq!(
+            pretty_format_batches(&batches).unwrap().to_string(),
+            expected
+        );
+        let decoded = planner.decoded();
+        assert!(decoded.get("daymark_latest") >= Some(&2), "{decoded:?}");
+    }
+
     #[tokio::test]
     async fn without_the_codec_a_plan_does_not_decode_and_says_which_function() {
         let ctx = daymark_engine::session::session(&Default::default()).unwrap();
@@ -380,5 +416,6 @@ mod tests {
         assert!(codec.decoded().is_empty());
         assert!(window_function(daymark_engine::functions::RUNNING_MAX).is_some());
         assert!(aggregate_function(daymark_engine::window_totals::WINDOW_TOTALS).is_some());
+        assert!(aggregate_function(daymark_engine::latest::LATEST).is_some());
     }
 }

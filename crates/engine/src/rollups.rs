@@ -233,10 +233,19 @@ pub fn columns(
             } else {
                 "__pt, __ps"
             };
-            cols.push(("__ps".into(), format!("last_value(__ps ORDER BY {order})")));
-            cols.push(("__pt".into(), format!("last_value(__pt ORDER BY {order})")));
+            cols.push((
+                "__ps".into(),
+                format!("{}(__ps, {order})", crate::latest::LATEST),
+            ));
+            cols.push((
+                "__pt".into(),
+                format!("{}(__pt, {order})", crate::latest::LATEST),
+            ));
             if has_arrival {
-                cols.push(("__pa".into(), format!("last_value(__pa ORDER BY {order})")));
+                cols.push((
+                    "__pa".into(),
+                    format!("{}(__pa, {order})", crate::latest::LATEST),
+                ));
             }
         }
         Population::RecentActivity(r) if r.source == layout.source => {

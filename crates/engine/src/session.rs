@@ -124,6 +124,7 @@ pub fn session(opts: &EngineOptions) -> Result<SessionContext> {
     let ctx = SessionContext::new_with_state(state);
     crate::functions::register(&ctx);
     crate::window_totals::register(&ctx);
+    crate::latest::register(&ctx);
     Ok(ctx)
 }
 

@@ -136,16 +136,16 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
                 .join(", ");
             columns.push((
                 "__ps".to_string(),
-                format!("last_value({col} ORDER BY {order})"),
+                format!("{}({col}, {order})", crate::latest::LATEST),
             ));
             columns.push((
                 "__pt".to_string(),
-                format!("last_value({ev} ORDER BY {order})"),
+                format!("{}({ev}, {order})", crate::latest::LATEST),
             ));
             if let Some(a) = &arr {
                 columns.push((
                     "__pa".to_string(),
-                    format!("last_value({a} ORDER BY {order})"),
+                    format!("{}({a}, {order})", crate::latest::LATEST),
                 ));
             }
         }
@@ -1613,7 +1613,8 @@ pub fn tiled_snapshot_query(
             };
             let values: Vec<String> = s.values.iter().map(|v| literal(v)).collect();
             format!(
-                "SELECT __key FROM (SELECT __key, last_value(__ps ORDER BY {order}) AS __state FROM {} GROUP BY __key) WHERE __state IN ({})",
+                "SELECT __key FROM (SELECT __key, {}(__ps, {order}) AS __state FROM {} GROUP BY __key) WHERE __state IN ({})",
+                crate::latest::LATEST,
                 ident(&format!("{}__rows", s.source)),
                 values.join(", ")
             )
