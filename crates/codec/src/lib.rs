@@ -51,13 +51,11 @@ pub fn window_function(name: &str) -> Option<Arc<WindowUDF>> {
 
 /// daymark's aggregate function called `name`, if it is one.
 pub fn aggregate_function(name: &str) -> Option<Arc<AggregateUDF>> {
-    [
-        AggregateUDF::from(daymark_engine::window_totals::WindowTotalsAggregate::default()),
-        AggregateUDF::from(daymark_engine::latest::Latest::default()),
-    ]
-    .into_iter()
-    .find(|f| f.name() == name)
-    .map(Arc::new)
+    let mut all = daymark_engine::latest::functions();
+    all.push(AggregateUDF::from(
+        daymark_engine::window_totals::WindowTotalsAggregate::default(),
+    ));
+    all.into_iter().find(|f| f.name() == name).map(Arc::new)
 }
 
 /// The extension codec for daymark's plans, logical and physical.
@@ -356,7 +354,8 @@ mod tests {
         assert_eq!(decoded.get("daymark_running_sum"), Some(&2), "{decoded:?}");
     }
 
-    /// `daymark_latest` in both aggregation phases, shipped as a cluster would ship it.
+    /// `daymark_latest` and `daymark_earliest` in both aggregation phases, shipped as a
+    /// cluster would ship them.
     #[tokio::test]
     async fn the_latest_value_aggregate_runs_after_protobuf() {
         let planner = Arc::new(RoundTripPlanner::default());
@@ -365,26 +364,29 @@ mod tests {
             ..Default::default()
         };
         let ctx = daymark_engine::session::session(&opts).unwrap();
-        let sql = "SELECT k, daymark_latest(s, t, a) AS latest \
+        let sql = "SELECT k, daymark_latest(s, t, a) AS latest, \
+                   daymark_earliest(s, t, a) AS earliest \
                    FROM (VALUES (1, 'active', 2, 9), (1, 'paused', 1, 10), (2, 'b', 5, 6), \
                    (2, 'a', 5, 7), (3, 'x', NULL, 1), (3, 'y', 4, 2)) AS r(k, s, t, a) \
                    GROUP BY k ORDER BY k";
         let batches = ctx.sql(sql).await.unwrap().collect().await.unwrap();
-        // Worked by hand: per k, the status of the greatest (t, a), a NULL t greatest.
+        // Worked by hand: per k, the status of the greatest and of the least (t, a), a
+        // NULL t greatest.
         let expected = "\
-+---+--------+
-| k | latest |
-+---+--------+
-| 1 | active |
-| 2 | a      |
-| 3 | x      |
-+---+--------+";
++---+--------+----------+
+| k | latest | earliest |
++---+--------+----------+
+| 1 | active | paused   |
+| 2 | a      | b        |
+| 3 | x      | y        |
++---+--------+----------+";
         assert_eq!(
             pretty_format_batches(&batches).unwrap().to_string(),
             expected
         );
         let decoded = planner.decoded();
         assert!(decoded.get("daymark_latest") >= Some(&2), "{decoded:?}");
+        assert!(decoded.get("daymark_earliest") >= Some(&2), "{decoded:?}");
     }
 
     #[tokio::test]
@@ -417,5 +419,6 @@ mod tests {
         assert!(window_function(daymark_engine::functions::RUNNING_MAX).is_some());
         assert!(aggregate_function(daymark_engine::window_totals::WINDOW_TOTALS).is_some());
         assert!(aggregate_function(daymark_engine::latest::LATEST).is_some());
+        assert!(aggregate_function(daymark_engine::latest::EARLIEST).is_some());
     }
 }

@@ -1,20 +1,22 @@
 //! `daymark_latest(value, o1, ..., on)`: per group, the value of the row that sorts last by
 //! `(o1, ..., on)`, ascending with NULLs last (as `last_value(value ORDER BY o1, ..., on)`;
 //! rows tied on every ordering column give the largest value, NULL largest, so the result
-//! does not depend on the order rows arrive in).
+//! does not depend on the order rows arrive in). `daymark_earliest` is the same for the
+//! row that sorts first (as `first_value`; ties give the smallest value).
 //!
 //! The population's state (the latest status of each key) is taken this way in the tiles,
-//! the history roll-ups and every daily build. DataFusion 55's `last_value` with an
-//! `ORDER BY` keeps each group's ordering as a vector of `ScalarValue`s and builds one per
-//! input row: about a tenth of the subscriptions' tile build, an eighth of the roll-ups and
-//! 40-60 ms of a daily build, on the benchmark's world (docs/benchmarks.md, twenty-fifth
-//! measurement). Here the ordering columns and the value are encoded once per batch in
-//! arrow's row format, whose bytes compare as the ordering does, and each group keeps the
-//! bytes of its greatest row; the value is decoded from them at the end. The state between
-//! the two aggregation phases is those bytes.
+//! the history roll-ups and every daily build, and so are first and last value features.
+//! DataFusion 55's `last_value` and `first_value` with an `ORDER BY` keep each group's
+//! ordering as a vector of `ScalarValue`s and build one per input row: about a tenth of
+//! the subscriptions' tile build, an eighth of the roll-ups and 40-60 ms of a daily build,
+//! on the benchmark's world (docs/benchmarks.md, twenty-fifth measurement). Here the
+//! ordering columns and the value are encoded once per batch in arrow's row format, whose
+//! bytes compare as the ordering does, and each group keeps the bytes of its greatest (or
+//! least) row; the value is decoded from them at the end. The state between the two
+//! aggregation phases is those bytes.
 //!
 //! The encoding is the same in every process of one daymark version (the same arrow), so
-//! a cluster's partial and final phases agree; plans naming the function travel with the
+//! a cluster's partial and final phases agree; plans naming the functions travel with the
 //! `daymark-codec` crate's codec.
 
 use datafusion::arrow::array::{Array, ArrayRef, AsArray, BinaryBuilder, BooleanArray};
@@ -29,26 +31,43 @@ use datafusion::logical_expr::{
 use datafusion::prelude::SessionContext;
 use std::sync::Arc;
 
-/// Name of the function.
+/// Name of the function taking the row that sorts last.
 pub const LATEST: &str = "daymark_latest";
+/// Name of the function taking the row that sorts first.
+pub const EARLIEST: &str = "daymark_earliest";
 
-/// The `daymark_latest` aggregate (see the module documentation).
+/// The `daymark_latest` or `daymark_earliest` aggregate (see the module documentation).
 #[derive(Debug, PartialEq, Eq, Hash)]
 pub struct Latest {
+    /// `daymark_earliest`: the row that sorts first.
+    earliest: bool,
     signature: Signature,
 }
 
-impl Default for Latest {
-    fn default() -> Self {
+impl Latest {
+    /// `daymark_earliest` when `earliest`, else `daymark_latest`.
+    pub fn new(earliest: bool) -> Self {
         Latest {
+            earliest,
             signature: Signature::variadic_any(Volatility::Immutable),
         }
     }
 }
 
+impl Default for Latest {
+    /// `daymark_latest`.
+    fn default() -> Self {
+        Latest::new(false)
+    }
+}
+
 impl AggregateUDFImpl for Latest {
     fn name(&self) -> &str {
-        LATEST
+        if self.earliest {
+            EARLIEST
+        } else {
+            LATEST
+        }
     }
 
     fn signature(&self) -> &Signature {
@@ -57,7 +76,10 @@ impl AggregateUDFImpl for Latest {
 
     fn return_type(&self, args: &[DataType]) -> Result<DataType> {
         if args.len() < 2 {
-            return plan_err!("{LATEST} takes a value and at least one column to order by");
+            return plan_err!(
+                "{} takes a value and at least one column to order by",
+                self.name()
+            );
         }
         Ok(args[0].clone())
     }
@@ -71,7 +93,7 @@ impl AggregateUDFImpl for Latest {
     }
 
     fn accumulator(&self, args: AccumulatorArgs) -> Result<Box<dyn Accumulator>> {
-        Ok(Box::new(OneGroup(LatestGroups::new(&args)?)))
+        Ok(Box::new(OneGroup(LatestGroups::new(&args, self.earliest)?)))
     }
 
     fn groups_accumulator_supported(&self, _args: AccumulatorArgs) -> bool {
@@ -82,18 +104,31 @@ impl AggregateUDFImpl for Latest {
         &self,
         args: AccumulatorArgs,
     ) -> Result<Box<dyn GroupsAccumulator>> {
-        Ok(Box::new(LatestGroups::new(&args)?))
+        Ok(Box::new(LatestGroups::new(&args, self.earliest)?))
     }
 }
 
-/// Registers `daymark_latest` with `ctx`.
-pub fn register(ctx: &SessionContext) {
-    ctx.register_udaf(AggregateUDF::from(Latest::default()));
+/// Both functions.
+pub fn functions() -> Vec<AggregateUDF> {
+    vec![
+        AggregateUDF::from(Latest::new(false)),
+        AggregateUDF::from(Latest::new(true)),
+    ]
 }
 
-/// Each group's greatest row so far, as row-format bytes of (o1, ..., on, value).
+/// Registers `daymark_latest` and `daymark_earliest` with `ctx`.
+pub fn register(ctx: &SessionContext) {
+    for f in functions() {
+        ctx.register_udaf(f);
+    }
+}
+
+/// Each group's greatest (or least) row so far, as row-format bytes of (o1, ..., on,
+/// value).
 #[derive(Debug)]
 struct LatestGroups {
+    /// Keep the least row instead of the greatest.
+    earliest: bool,
     converter: RowConverter,
     /// Per group; empty while the group has no row (an encoded row is never empty).
     best: Vec<Vec<u8>>,
@@ -102,14 +137,16 @@ struct LatestGroups {
 }
 
 impl LatestGroups {
-    fn new(args: &AccumulatorArgs) -> Result<Self> {
+    fn new(args: &AccumulatorArgs, earliest: bool) -> Result<Self> {
         let types: Vec<DataType> = args
             .exprs
             .iter()
             .map(|e| e.data_type(args.schema))
             .collect::<Result<_>>()?;
         if types.len() < 2 {
-            return plan_err!("{LATEST} takes a value and at least one column to order by");
+            return plan_err!(
+                "{LATEST} and {EARLIEST} take a value and at least one column to order by"
+            );
         }
         let last = SortOptions {
             descending: false,
@@ -122,6 +159,7 @@ impl LatestGroups {
             .map(|t| SortField::new_with_options(t.clone(), last))
             .collect();
         Ok(LatestGroups {
+            earliest,
             converter: RowConverter::new(fields)?,
             best: Vec::new(),
             held: 0,
@@ -135,10 +173,16 @@ impl LatestGroups {
         Ok(self.converter.convert_columns(&columns)?)
     }
 
-    /// Keeps `row` for `group` when it sorts after the group's row so far.
+    /// Keeps `row` for `group` when it sorts after (before, for the earliest) the group's
+    /// row so far.
     fn offer(&mut self, group: usize, row: &[u8]) {
         let best = &mut self.best[group];
-        if best.is_empty() || row > best.as_slice() {
+        let better = if self.earliest {
+            row < best.as_slice()
+        } else {
+            row > best.as_slice()
+        };
+        if best.is_empty() || better {
             let before = best.capacity();
             best.clear();
             best.extend_from_slice(row);
@@ -358,7 +402,8 @@ mod tests {
         out
     }
 
-    /// The same answers as `last_value(v ORDER BY t, a, v)` (ascending, NULLs last), with
+    /// The same answers as `last_value(v ORDER BY t, a, v)` (ascending, NULLs last) and
+    /// `first_value(...)` for `daymark_earliest`, with
     /// ties on the ordering broken by the value, NULLs among the ordering values and the
     /// values, and a group whose rows a filter removes.
     #[tokio::test]
@@ -431,6 +476,31 @@ mod tests {
         .map(|v| v.map(str::to_string))
         .to_vec();
         assert_eq!(times, expected_times);
+        // The earliest row: the same ordering, the other end.
+        let first = [
+            Some("active"),
+            Some("b"),
+            Some("x"),
+            Some("early"),
+            Some("v"),
+            None,
+            Some("known"),
+        ]
+        .map(|v| v.map(str::to_string))
+        .to_vec();
+        for f in [
+            "daymark_earliest(v, t, a)",
+            "first_value(v ORDER BY t, a, v)",
+        ] {
+            let got = strings(
+                &ctx,
+                &format!(
+                    "SELECT {f} FILTER (WHERE a IS NULL OR a >= 0) FROM t GROUP BY g ORDER BY g"
+                ),
+            )
+            .await;
+            assert_eq!(got, first, "{f}");
+        }
         // Without a grouping.
         let all = strings(&ctx, "SELECT daymark_latest(v, t, a) FROM t WHERE g = 1").await;
         assert_eq!(all, vec![Some("cancelled".to_string())]);

@@ -8,8 +8,9 @@
 //!   (plans naming them travel to a cluster with the `daymark-codec` crate's codec).
 //! - [`window_totals`]: windowed sums, active days and first/last days of each key's tile
 //!   rows, for backfills whose features are all of those kinds (and the codec likewise).
-//! - [`latest`]: the value of each group's row that sorts last (the population's state),
-//!   without `last_value`'s per-row bookkeeping (and the codec likewise).
+//! - [`latest`]: the value of each group's row that sorts last or first (the population's
+//!   state, first and last value features), without `last_value`'s per-row bookkeeping
+//!   (and the codec likewise).
 //! - [`build`]: build one snapshot day and publish it atomically; the feature dictionary.
 //! - [`backfill`]: every snapshot of a range of days in one set-based query over tiles.
 //! - [`tiles`]: per key, per day partial aggregates of each source, and snapshots combined

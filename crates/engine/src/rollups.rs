@@ -290,7 +290,7 @@ pub fn columns(
                     names.push(format!("__va{i}"));
                 }
                 for n in names {
-                    cols.push((n.clone(), format!("{func}({n} ORDER BY {order}){rows}")));
+                    cols.push((n.clone(), format!("{func}({n}, {order}){rows}")));
                 }
             }
             Aggregation::ActiveDays => {

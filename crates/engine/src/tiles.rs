@@ -193,28 +193,19 @@ pub fn layout(pipeline: &Pipeline, source: &Source) -> Option<TileLayout> {
             Aggregation::Max => columns.push((format!("__m{i}"), format!("MAX({e}){only}"))),
             Aggregation::First | Aggregation::Last => {
                 let func = if *agg == Aggregation::First {
-                    "first_value"
+                    crate::latest::EARLIEST
                 } else {
-                    "last_value"
+                    crate::latest::LATEST
                 };
                 let order = [Some(ev.clone()), arr.clone(), Some(e.clone())]
                     .into_iter()
                     .flatten()
                     .collect::<Vec<_>>()
                     .join(", ");
-                columns.push((
-                    format!("__v{i}"),
-                    format!("{func}({e} ORDER BY {order}){only}"),
-                ));
-                columns.push((
-                    format!("__vt{i}"),
-                    format!("{func}({ev} ORDER BY {order}){only}"),
-                ));
+                columns.push((format!("__v{i}"), format!("{func}({e}, {order}){only}")));
+                columns.push((format!("__vt{i}"), format!("{func}({ev}, {order}){only}")));
                 if let Some(a) = &arr {
-                    columns.push((
-                        format!("__va{i}"),
-                        format!("{func}({a} ORDER BY {order}){only}"),
-                    ));
+                    columns.push((format!("__va{i}"), format!("{func}({a}, {order}){only}")));
                 }
             }
             Aggregation::CountDistinct => distinct.push((i, e.clone(), filter.clone())),
@@ -1054,17 +1045,18 @@ pub(crate) async fn collect(
 }
 
 /// The aggregate function of first/last feature `i` over partial rows (tile rows, pieces)
-/// and the order it takes them in: event time, then arrival time where the source has
-/// one, then value (the naive path's order).
+/// and the order it takes them in, as its arguments after the value ([`crate::latest`]):
+/// event time, then arrival time where the source has one, then value (the naive path's
+/// order).
 pub(crate) fn first_last_of_partials(
     agg: Aggregation,
     i: usize,
     has_arrival: bool,
 ) -> (&'static str, String) {
     let func = if agg == Aggregation::First {
-        "first_value"
+        crate::latest::EARLIEST
     } else {
-        "last_value"
+        crate::latest::LATEST
     };
     let order = if has_arrival {
         format!("__vt{i}, __va{i}, __v{i}")
@@ -1686,7 +1678,7 @@ pub fn tiled_snapshot_query(
             Aggregation::ActiveDays => format!("COALESCE(SUM(__ad{i}){}, 0)", with(None)),
             Aggregation::First | Aggregation::Last => {
                 let (func, order) = first_last_of_partials(*agg, i, has_arrival);
-                format!("{func}(__v{i} ORDER BY {order}){}", with(rows))
+                format!("{func}(__v{i}, {order}){}", with(rows))
             }
             Aggregation::DaysSinceFirst => format!("{d_days} - CAST(MIN(__tf{i}) AS BIGINT)"),
             Aggregation::DaysSinceLast => format!("{d_days} - CAST(MAX(__tl{i}) AS BIGINT)"),
