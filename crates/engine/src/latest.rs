@@ -206,25 +206,21 @@ impl LatestGroups {
     /// The values of `rows` (NULL where a group had no row).
     fn values(&self, rows: &[Vec<u8>]) -> Result<ArrayRef> {
         let parser = self.converter.parser();
-        let set: Vec<usize> = (0..rows.len()).filter(|i| !rows[*i].is_empty()).collect();
-        let parsed = set.iter().map(|i| parser.parse(&rows[*i]));
-        let decoded = self.converter.convert_rows(parsed)?;
+        let set = rows.iter().filter(|r| !r.is_empty());
+        let decoded = self.converter.convert_rows(set.map(|r| parser.parse(r)))?;
         let value = decoded.last().expect("at least two columns").clone();
-        if set.len() == rows.len() {
+        if value.len() == rows.len() {
             return Ok(value);
         }
         // Spread the decoded values to their groups, NULL in between.
-        let mut at = set.iter().peekable();
-        let mut n = 0u32;
-        let indices: datafusion::arrow::array::UInt32Array = (0..rows.len())
-            .map(|i| {
-                if at.peek() == Some(&&i) {
-                    at.next();
-                    n += 1;
-                    Some(n - 1)
-                } else {
-                    None
-                }
+        let mut next = 0u32;
+        let indices: datafusion::arrow::array::UInt32Array = rows
+            .iter()
+            .map(|r| {
+                (!r.is_empty()).then(|| {
+                    next += 1;
+                    next - 1
+                })
             })
             .collect();
         Ok(datafusion::arrow::compute::take(&value, &indices, None)?)

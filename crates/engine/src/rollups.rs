@@ -233,19 +233,14 @@ pub fn columns(
             } else {
                 "__pt, __ps"
             };
-            cols.push((
-                "__ps".into(),
-                format!("{}(__ps, {order})", crate::latest::LATEST),
-            ));
-            cols.push((
-                "__pt".into(),
-                format!("{}(__pt, {order})", crate::latest::LATEST),
-            ));
-            if has_arrival {
-                cols.push((
-                    "__pa".into(),
-                    format!("{}(__pa, {order})", crate::latest::LATEST),
-                ));
+            let names: &[&str] = if has_arrival {
+                &["__ps", "__pt", "__pa"]
+            } else {
+                &["__ps", "__pt"]
+            };
+            for n in names {
+                let latest = format!("{}({n}, {order})", crate::latest::LATEST);
+                cols.push((n.to_string(), latest));
             }
         }
         Population::RecentActivity(r) if r.source == layout.source => {
