@@ -288,8 +288,58 @@ pub async fn tile_types(ctx: &SessionContext, layouts: &BTreeMap<String, TileLay
                 out.insert((name.clone(), f.name().clone()), f.data_type().clone());
             }
         }
+        for (i, _, _) in &l.distinct {
+            if let Ok(t) = ctx.table(l.distinct_table(*i)).await {
+                if let Ok(f) = t.schema().field_with_unqualified_name("__v") {
+                    out.insert((name.clone(), distinct_value(*i)), f.data_type().clone());
+                }
+            }
+        }
     }
     out
+}
+
+/// The [`TileTypes`] name of the value column of feature `i`'s distinct-value tiles.
+fn distinct_value(i: usize) -> String {
+    format!("__d{i}.__v")
+}
+
+/// Whether values of type `t` are read by the windowed totals as they are or cast to
+/// BIGINT or DOUBLE ([`direct_value`]): integers, floats and decimals.
+fn direct_numeric(t: Option<&DataType>) -> bool {
+    matches!(
+        t,
+        Some(
+            DataType::Int8
+                | DataType::Int16
+                | DataType::Int32
+                | DataType::Int64
+                | DataType::UInt8
+                | DataType::UInt16
+                | DataType::UInt32
+                | DataType::UInt64
+                | DataType::Float32
+                | DataType::Float64
+                | DataType::Decimal128(_, _)
+        )
+    )
+}
+
+/// `x` (of type `t`, [`direct_numeric`]) as the windowed totals read it (smaller
+/// integers as BIGINT, REAL as DOUBLE), and the type to cast an output back to, if the
+/// output's differs (a total of DECIMAL(p, s) comes as DECIMAL(38, s)).
+fn direct_value(x: &str, t: &DataType) -> (String, Option<DataType>) {
+    match t {
+        DataType::Int8
+        | DataType::Int16
+        | DataType::Int32
+        | DataType::UInt8
+        | DataType::UInt16
+        | DataType::UInt32 => (format!("CAST({x} AS BIGINT)"), Some(t.clone())),
+        DataType::Float32 => (format!("CAST({x} AS DOUBLE)"), Some(t.clone())),
+        DataType::Decimal128(_, _) => (x.to_string(), Some(t.clone())),
+        _ => (x.to_string(), None),
+    }
 }
 
 /// A typed SQL NULL (UNION branches need one type per column).
@@ -339,8 +389,9 @@ fn sum_or_mean(agg: Aggregation, i: usize, float: bool) -> String {
 
 /// Whether every aggregate feature of `pipeline` is one that the windowed totals
 /// ([`crate::window_totals`]) compute straight from tile rows: counts, sums and means of
-/// integers, decimals or floats, active days, days since the first or last event. Other
-/// aggregations (min, max, first, last, distinct counts) take the general query.
+/// integers, decimals or floats, active days, days since the first or last event, least
+/// and greatest numbers, first and last values, distinct counts. Others (least and
+/// greatest text, dates or times) take the general query.
 pub fn direct_features(pipeline: &Pipeline, types: &TileTypes) -> bool {
     pipeline.features.iter().enumerate().all(|(i, f)| {
         let FeatureDef::Aggregate { source, agg, .. } = &f.def else {
@@ -362,27 +413,34 @@ pub fn direct_features(pipeline: &Pipeline, types: &TileTypes) -> bool {
                         | DataType::Decimal128(_, _)
                 )
             ),
-            _ => false,
+            // Least and greatest numbers; first and last values by their rank, joined
+            // back; distinct values by their number in a dictionary.
+            Aggregation::Min | Aggregation::Max => {
+                direct_numeric(types.get(&(source.clone(), format!("__m{i}"))))
+            }
+            Aggregation::First | Aggregation::Last | Aggregation::CountDistinct => true,
         }
     })
 }
 
 /// The rest of [`range_query`] after the population's spans when [`direct_features`]
-/// holds: one UNION of the visible tile rows and the spans, grouped by key into one call of
-/// the windowed-total aggregate with an output per feature column, unnested into one row
-/// per (key, snapshot day). The rows must be ordered by day first: DataFusion 55 keeps the
-/// grouping's "the key determines every column" through the unnest and would drop any
+/// holds: one UNION of the visible tile rows (and distinct-value tile rows) and the spans,
+/// grouped by key into one call of the windowed-total aggregate with an output per feature
+/// column, unnested into one row per (key, snapshot day); first and last values are
+/// joined back by their rank. The rows must be ordered by day first: DataFusion 55 keeps
+/// the grouping's "the key determines every column" through the unnest and would drop any
 /// sort column after the key.
 fn direct_tail(
     pipeline: &Pipeline,
     layouts: &BTreeMap<String, TileLayout>,
-    reads_last: &BTreeMap<String, crate::sql::SourceRead>,
+    read: &RangeRead,
     types: &TileTypes,
     mut ctes: Vec<String>,
     ordered: bool,
 ) -> String {
     use crate::window_totals::WindowKind;
-    // Value columns of the union: (name, type, source, expression over the tile row).
+    let reads_last = &read.last;
+    // Value columns of the union: (name, type, branch table, expression over its rows).
     let mut columns: Vec<(String, DataType, String, String)> = Vec::new();
     // (source, tile column alias) -> the stored column defined the same way.
     let mut same_columns: HashMap<(String, String), String> = HashMap::new();
@@ -391,12 +449,14 @@ fn direct_tail(
             same_columns.insert((name.clone(), alias.clone()), stored.clone());
         }
     }
-    // Per output: (kind, window, union column) arguments, and the output's name.
-    let mut outputs: Vec<(String, String)> = Vec::new();
+    // Per output: (kind, window, union column) arguments, the output's name, and the type
+    // to cast it back to.
+    let mut outputs: Vec<(String, String, Option<DataType>)> = Vec::new();
     let mut layer0 = vec![
         format!("p.__key AS {}", ident(&pipeline.file.key)),
         "arrow_cast(CAST(p.__dn AS INT), 'Date32') AS snapshot_date".to_string(),
     ];
+    let mut joins = Vec::new();
     for (i, f) in pipeline.features.iter().enumerate() {
         let FeatureDef::Aggregate {
             source,
@@ -418,30 +478,39 @@ fn direct_tail(
         let bound = w
             .map(|w| w.to_string())
             .unwrap_or_else(|| "CAST(NULL AS BIGINT)".to_string());
-        let mut call = |kind: WindowKind, col: String, ty: DataType, expr: String, out: String| {
+        let rows = ident(&format!("{source}__v"));
+        let mut call = |kind: WindowKind,
+                        branch: &str,
+                        col: String,
+                        ty: DataType,
+                        expr: String,
+                        out: String,
+                        back: Option<DataType>| {
             // Features over the same tile column (a count in three windows, the count
             // that active days also reads) share one union column.
             let expr = same_columns
                 .get(&(source.clone(), expr.clone()))
                 .cloned()
                 .unwrap_or(expr);
-            let col = match columns.iter().find(|c| c.2 == *source && c.3 == expr) {
+            let col = match columns.iter().find(|c| c.2 == branch && c.3 == expr) {
                 Some(c) => c.0.clone(),
                 None => {
-                    columns.push((col.clone(), ty, source.clone(), expr));
+                    columns.push((col.clone(), ty, branch.to_string(), expr));
                     col
                 }
             };
-            outputs.push((format!("{}, {bound}, {col}", kind.code()), out));
+            outputs.push((format!("{}, {bound}, {col}", kind.code()), out, back));
         };
         let v = match agg {
             Aggregation::Count => {
                 call(
                     WindowKind::Sum,
+                    &rows,
                     format!("__xc{i}"),
                     DataType::Int64,
                     format!("__c{i}"),
                     format!("__c{i}"),
+                    None,
                 );
                 format!("p.__c{i}")
             }
@@ -463,23 +532,35 @@ fn direct_tail(
                 } else {
                     (t, s_col)
                 };
-                call(WindowKind::Sum, format!("__xs{i}"), t, x, format!("__s{i}"));
                 call(
                     WindowKind::Sum,
+                    &rows,
+                    format!("__xs{i}"),
+                    t,
+                    x,
+                    format!("__s{i}"),
+                    None,
+                );
+                call(
+                    WindowKind::Sum,
+                    &rows,
                     format!("__xn{i}"),
                     DataType::Int64,
                     format!("__n{i}"),
                     format!("__n{i}"),
+                    None,
                 );
                 sum_or_mean(*agg, i, float)
             }
             Aggregation::ActiveDays => {
                 call(
                     WindowKind::Days,
+                    &rows,
                     format!("__xc{i}"),
                     DataType::Int64,
                     format!("__c{i}"),
                     format!("__d{i}"),
+                    None,
                 );
                 format!("p.__d{i}")
             }
@@ -491,28 +572,139 @@ fn direct_tail(
                 };
                 call(
                     kind,
+                    &rows,
                     format!("__xc{i}"),
                     DataType::Int64,
                     format!("__c{i}"),
                     format!("__t{i}"),
+                    None,
                 );
                 format!("p.__dn - p.__t{i}")
             }
-            // Not taken: `direct_features` sends these to the general query.
-            _ => "NULL".to_string(),
+            Aggregation::Min | Aggregation::Max => {
+                let kind = if *agg == Aggregation::Min {
+                    WindowKind::Min
+                } else {
+                    WindowKind::Max
+                };
+                let t = types
+                    .get(&(source.clone(), format!("__m{i}")))
+                    .cloned()
+                    .unwrap_or(DataType::Int64);
+                let stored = same_columns
+                    .get(&(source.clone(), format!("__m{i}")))
+                    .cloned()
+                    .unwrap_or_else(|| format!("__m{i}"));
+                let (x, back) = direct_value(&stored, &t);
+                let ty = match &t {
+                    DataType::Float32 => DataType::Float64,
+                    DataType::Decimal128(_, _) | DataType::Float64 | DataType::UInt64 => t.clone(),
+                    _ => DataType::Int64,
+                };
+                call(
+                    kind,
+                    &rows,
+                    format!("__xm{i}"),
+                    ty,
+                    x,
+                    format!("__m{i}"),
+                    back,
+                );
+                format!("p.__m{i}")
+            }
+            Aggregation::First | Aggregation::Last => {
+                // The greatest (least) rank among the visible rows, in the naive path's
+                // order (`range_sql`'s `__rk`), then the value of that rank.
+                let kind = if *agg == Aggregation::First {
+                    WindowKind::Min
+                } else {
+                    WindowKind::Max
+                };
+                call(
+                    kind,
+                    &rows,
+                    format!("__xr{i}"),
+                    DataType::UInt64,
+                    format!("__rk{i}"),
+                    format!("__r{i}"),
+                    None,
+                );
+                let vals = ident(&format!("{source}__vals{i}"));
+                ctes.push(format!(
+                    "{vals} AS (SELECT __key, __rk{i} AS __rk, __v{i} AS __v FROM {rows} WHERE __c{i} > 0)"
+                ));
+                let q = format!("__q{i}");
+                joins.push(format!(
+                    "LEFT JOIN {vals} {q} ON {q}.__key = p.__key AND {q}.__rk = p.__r{i}"
+                ));
+                format!("{q}.__v")
+            }
+            Aggregation::CountDistinct => {
+                // The visible distinct-value tile rows, each value as a BIGINT: integers
+                // as they are, others by their number in a dictionary of the values read.
+                let source_read = &reads_last[source];
+                let visible = ident(&format!("{source}__dr{i}"));
+                ctes.push(format!(
+                    "{visible} AS ({})",
+                    visible_tile_rows(
+                        &ident(&layouts[source].distinct_table(i)),
+                        "__key, __v",
+                        read.first.get(source).and_then(|r| r.first_day),
+                        source_read.last_day,
+                        source_read.knowledge,
+                        read.until,
+                        read.keys,
+                    )
+                ));
+                let integer = matches!(
+                    types.get(&(source.clone(), distinct_value(i))),
+                    Some(
+                        DataType::Int8
+                            | DataType::Int16
+                            | DataType::Int32
+                            | DataType::Int64
+                            | DataType::UInt8
+                            | DataType::UInt16
+                            | DataType::UInt32
+                    )
+                );
+                let (branch, x) = if integer {
+                    (visible, "CAST(__v AS BIGINT)".to_string())
+                } else {
+                    let dict = ident(&format!("{source}__dd{i}"));
+                    let numbered = ident(&format!("{source}__dx{i}"));
+                    ctes.push(format!(
+                        "{dict} AS (SELECT __v, CAST(row_number() OVER (ORDER BY __v) AS BIGINT) AS __id FROM (SELECT DISTINCT __v FROM {visible} WHERE __v IS NOT NULL))"
+                    ));
+                    ctes.push(format!(
+                        "{numbered} AS (SELECT r.__key, r.__tn, r.__vn, d.__id FROM {visible} r JOIN {dict} d ON r.__v = d.__v)"
+                    ));
+                    (numbered, "__id".to_string())
+                };
+                call(
+                    WindowKind::Distinct,
+                    &branch,
+                    format!("__xd{i}"),
+                    DataType::Int64,
+                    x,
+                    format!("__d{i}"),
+                    None,
+                );
+                format!("p.__d{i}")
+            }
         };
         layer0.push(feature_column(f, *agg, &v));
     }
-    // One branch per source with features, then the population's spans of days; each
+    // One branch per table with features, then the population's spans of days; each
     // names every column.
-    let mut sources: Vec<&str> = Vec::new();
-    for (_, _, source, _) in &columns {
-        if !sources.contains(&source.as_str()) {
-            sources.push(source);
+    let mut tables: Vec<&str> = Vec::new();
+    for (_, _, table, _) in &columns {
+        if !tables.contains(&table.as_str()) {
+            tables.push(table);
         }
     }
     let mut branches = Vec::new();
-    for from in sources.iter().map(Some).chain([None]) {
+    for from in tables.iter().map(Some).chain([None]) {
         let none = "CAST(NULL AS BIGINT)";
         let mut cols = match from {
             Some(_) => vec![
@@ -530,8 +722,8 @@ fn direct_tail(
                 "__e".to_string(),
             ],
         };
-        for (name, ty, source, expr) in &columns {
-            let v = if from == Some(&source.as_str()) {
+        for (name, ty, table, expr) in &columns {
+            let v = if from == Some(&table.as_str()) {
                 expr.clone()
             } else {
                 typed_null(ty)
@@ -539,7 +731,7 @@ fn direct_tail(
             cols.push(format!("{v} AS {name}"));
         }
         let table = match from {
-            Some(s) => ident(&format!("{s}__v")),
+            Some(t) => t.to_string(),
             None => "__pop_spans WHERE __s <= __e".to_string(),
         };
         branches.push(format!("SELECT {} FROM {table}", cols.join(", ")));
@@ -556,8 +748,13 @@ fn direct_tail(
         "__key".to_string(),
         "get_field(__o, 'dn') AS __dn".to_string(),
     ];
-    for (m, (_, out)) in outputs.iter().enumerate() {
-        p_cols.push(format!("get_field(__o, 'o{m}') AS {out}"));
+    for (m, (_, out, back)) in outputs.iter().enumerate() {
+        let v = format!("get_field(__o, 'o{m}')");
+        let v = match back {
+            Some(t) => format!("arrow_cast({v}, {})", literal(&t.to_string())),
+            None => v,
+        };
+        p_cols.push(format!("{v} AS {out}"));
     }
     ctes.push(format!(
         "__population AS (SELECT {} FROM (SELECT __key, unnest(__r) AS __o FROM __g))",
@@ -567,9 +764,18 @@ fn direct_tail(
         pipeline,
         &ctes,
         &layer0,
-        &[],
+        &joins,
         ordered.then_some("snapshot_date, "),
     )
+}
+
+/// What a range query reads: the sources' reads for its first and last days, the last
+/// snapshot day's number and the range of keys.
+struct RangeRead<'a> {
+    first: BTreeMap<String, crate::sql::SourceRead>,
+    last: BTreeMap<String, crate::sql::SourceRead>,
+    until: i64,
+    keys: &'a KeyRange,
 }
 
 /// One branch of the big UNION: named columns (the rest are NULL).
@@ -711,7 +917,13 @@ fn range_sql(
         }
     }
     if direct_features(pipeline, types) {
-        return direct_tail(pipeline, layouts, &reads_last, types, ctes, ordered);
+        let read = RangeRead {
+            first: reads_first,
+            last: reads_last,
+            until: nn,
+            keys,
+        };
+        return direct_tail(pipeline, layouts, &read, types, ctes, ordered);
     }
     ctes.push(
         "__spine AS (SELECT __key, unnest(range(__s, __e + 1)) AS __dn FROM __pop_spans WHERE __s <= __e)"

@@ -21,12 +21,12 @@
 //! grouping in one phase.
 
 use datafusion::arrow::array::{
-    Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Int64Array, ListArray,
+    Array, ArrayRef, AsArray, BooleanArray, Decimal128Array, Float64Array, Int64Array, ListArray,
     NullBufferBuilder, PrimitiveArray, StructArray, UInt64Array,
 };
 use datafusion::arrow::buffer::OffsetBuffer;
 use datafusion::arrow::datatypes::{
-    DataType, Decimal128Type, Field, FieldRef, Fields, Int64Type, UInt64Type,
+    DataType, Decimal128Type, Field, FieldRef, Fields, Float64Type, Int64Type, UInt64Type,
 };
 use datafusion::common::config::ConfigOptions;
 use datafusion::common::tree_node::{Transformed, TransformedResult, TreeNode};
@@ -43,7 +43,7 @@ use datafusion::physical_plan::repartition::RepartitionExec;
 use datafusion::physical_plan::{ExecutionPlan, Partitioning};
 use datafusion::prelude::SessionContext;
 use std::cmp::Reverse;
-use std::collections::{BinaryHeap, HashMap};
+use std::collections::{BTreeMap, BinaryHeap, HashMap};
 use std::sync::Arc;
 
 /// What an output of [`WINDOW_TOTALS`] computes for each snapshot day.
@@ -57,20 +57,42 @@ pub enum WindowKind {
     FirstDay,
     /// Latest event day of a visible row whose value is above zero (unbounded windows).
     LastDay,
+    /// Least visible value (NULL when none is visible).
+    Min,
+    /// Greatest visible value (NULL when none is visible).
+    Max,
+    /// Number of distinct visible values (BIGINT values: a backfill passes each value's
+    /// number in a dictionary, or the integer itself).
+    Distinct,
 }
 
-/// The type of a total of values of type `x`.
+/// The type of a total of values of type `x` (of their least or greatest, for DOUBLE
+/// values, which only [`WindowKind::Min`] and [`WindowKind::Max`] take).
 fn output_type(x: &DataType) -> Result<DataType> {
     Ok(match x {
         DataType::Int64 | DataType::Null => DataType::Int64,
         DataType::UInt64 => DataType::UInt64,
         DataType::Decimal128(_, s) => DataType::Decimal128(38, *s),
-        other => {
-            return plan_err!(
-                "{WINDOW_TOTALS} adds BIGINT, unsigned BIGINT or DECIMAL, not {other}"
-            )
-        }
+        DataType::Float64 => DataType::Float64,
+        other => return plan_err!(
+            "{WINDOW_TOTALS} takes BIGINT, unsigned BIGINT, DECIMAL or DOUBLE values, not {other}"
+        ),
     })
+}
+
+/// A DOUBLE as an integer of the same order (IEEE 754's total order: -NaN, -inf, ...,
+/// -0, +0, ..., +inf, NaN, as arrow's MIN and MAX compare floats), so that least and
+/// greatest values are found among exact integers like every other value. The mapping is
+/// its own inverse ([`float_of_ordered`]).
+fn ordered_of_float(f: f64) -> i64 {
+    let b = f.to_bits() as i64;
+    // Negative numbers order backwards by their bits: flip all but the sign.
+    b ^ ((b >> 63) & i64::MAX)
+}
+
+/// The DOUBLE of an [`ordered_of_float`] integer.
+fn float_of_ordered(o: i64) -> f64 {
+    f64::from_bits((o ^ ((o >> 63) & i64::MAX)) as u64)
 }
 
 /// A BIGINT argument.
@@ -89,11 +111,13 @@ fn int_at(a: &PrimitiveArray<Int64Type>, i: usize) -> Option<i64> {
     a.is_valid(i).then(|| a.value(i))
 }
 
-/// The value argument, read as exact integers.
+/// The value argument, read as exact integers (DOUBLEs in their order,
+/// [`ordered_of_float`]).
 enum Values<'a> {
     I64(&'a PrimitiveArray<Int64Type>),
     U64(&'a PrimitiveArray<UInt64Type>),
     Dec(&'a PrimitiveArray<Decimal128Type>),
+    F64(&'a PrimitiveArray<Float64Type>),
 }
 
 impl<'a> Values<'a> {
@@ -102,6 +126,7 @@ impl<'a> Values<'a> {
             DataType::Int64 => Values::I64(a.as_primitive()),
             DataType::UInt64 => Values::U64(a.as_primitive()),
             DataType::Decimal128(_, _) => Values::Dec(a.as_primitive()),
+            DataType::Float64 => Values::F64(a.as_primitive()),
             other => return exec_err!("window totals: values of type {other} are not supported"),
         })
     }
@@ -112,6 +137,7 @@ impl<'a> Values<'a> {
             Values::I64(a) => a.is_valid(i).then(|| a.value(i) as i128),
             Values::U64(a) => a.is_valid(i).then(|| a.value(i) as i128),
             Values::Dec(a) => a.is_valid(i).then(|| a.value(i)),
+            Values::F64(a) => a.is_valid(i).then(|| ordered_of_float(a.value(i)) as i128),
         }
     }
 }
@@ -141,6 +167,10 @@ struct Visible {
     days: i64,
     first: Option<i64>,
     last: Option<i64>,
+    /// Visible values and how many rows hold each, for `Min`, `Max` (ordered: a row
+    /// leaving the window takes its value out) and `Distinct` (`values.len()`).
+    ordered: BTreeMap<i128, u32>,
+    values: HashMap<i128, u32>,
 }
 
 impl Visible {
@@ -171,6 +201,8 @@ impl Visible {
             days: 0,
             first: None,
             last: None,
+            ordered: BTreeMap::new(),
+            values: HashMap::new(),
         }
     }
 
@@ -202,6 +234,8 @@ impl Visible {
             }
             WindowKind::FirstDay => self.first = Some(self.first.map_or(r.tn, |f| f.min(r.tn))),
             WindowKind::LastDay => self.last = Some(self.last.map_or(r.tn, |l| l.max(r.tn))),
+            WindowKind::Min | WindowKind::Max => *self.ordered.entry(r.x).or_insert(0) += 1,
+            WindowKind::Distinct => *self.values.entry(r.x).or_insert(0) += 1,
         }
         Ok(())
     }
@@ -221,6 +255,49 @@ impl Visible {
                 }
             }
             WindowKind::FirstDay | WindowKind::LastDay => {}
+            WindowKind::Min | WindowKind::Max => self.ordered.decrement(r.x),
+            WindowKind::Distinct => self.values.decrement(r.x),
+        }
+    }
+
+    /// The output for the rows visible now.
+    fn output(&self) -> Option<i128> {
+        match self.kind {
+            WindowKind::Sum => (self.rows > 0).then_some(self.sum),
+            WindowKind::Days => Some(self.days as i128),
+            WindowKind::FirstDay => self.first.map(i128::from),
+            WindowKind::LastDay => self.last.map(i128::from),
+            WindowKind::Min => self.ordered.keys().next().copied(),
+            WindowKind::Max => self.ordered.keys().next_back().copied(),
+            WindowKind::Distinct => Some(self.values.len() as i128),
+        }
+    }
+}
+
+/// A count of rows per value, from which a row's value can be taken out (the value goes
+/// when no row holds it any more).
+trait ValueCounts {
+    fn decrement(&mut self, x: i128);
+}
+
+impl ValueCounts for BTreeMap<i128, u32> {
+    fn decrement(&mut self, x: i128) {
+        if let std::collections::btree_map::Entry::Occupied(mut e) = self.entry(x) {
+            *e.get_mut() -= 1;
+            if *e.get() == 0 {
+                e.remove();
+            }
+        }
+    }
+}
+
+impl ValueCounts for HashMap<i128, u32> {
+    fn decrement(&mut self, x: i128) {
+        if let std::collections::hash_map::Entry::Occupied(mut e) = self.entry(x) {
+            *e.get_mut() -= 1;
+            if *e.get() == 0 {
+                e.remove();
+            }
         }
     }
 }
@@ -276,12 +353,7 @@ fn totals(
                 shown[j] = true;
             }
         }
-        out.push(match kind {
-            WindowKind::Sum => (visible.rows > 0).then_some(visible.sum),
-            WindowKind::Days => Some(visible.days as i128),
-            WindowKind::FirstDay => visible.first.map(i128::from),
-            WindowKind::LastDay => visible.last.map(i128::from),
-        })?;
+        out.push(visible.output())?;
     }
     scratch.per_day = visible.per_day;
     Ok(())
@@ -310,6 +382,8 @@ enum OutValues {
     I64(Vec<i64>),
     U64(Vec<u64>),
     Dec(Vec<i128>),
+    /// DOUBLEs, pushed in their order ([`ordered_of_float`]).
+    F64(Vec<f64>),
 }
 
 impl OutColumn {
@@ -318,6 +392,7 @@ impl OutColumn {
             DataType::Int64 => OutValues::I64(Vec::with_capacity(len)),
             DataType::UInt64 => OutValues::U64(Vec::with_capacity(len)),
             DataType::Decimal128(_, _) => OutValues::Dec(Vec::with_capacity(len)),
+            DataType::Float64 => OutValues::F64(Vec::with_capacity(len)),
             other => return exec_err!("window totals: no output of type {other}"),
         };
         Ok(OutColumn {
@@ -338,6 +413,9 @@ impl OutColumn {
                 out.push(v);
                 true
             }
+            OutValues::F64(out) => i64::try_from(v)
+                .map(|v| out.push(float_of_ordered(v)))
+                .is_ok(),
         };
         if !fits {
             return exec_err!("{WINDOW_TOTALS}: the total does not fit {}", self.out);
@@ -351,6 +429,7 @@ impl OutColumn {
         Ok(match self.values {
             OutValues::I64(v) => Arc::new(Int64Array::try_new(v.into(), nulls)?),
             OutValues::U64(v) => Arc::new(UInt64Array::try_new(v.into(), nulls)?),
+            OutValues::F64(v) => Arc::new(Float64Array::try_new(v.into(), nulls)?),
             OutValues::Dec(v) => {
                 let DataType::Decimal128(p, s) = self.out else {
                     return exec_err!("window totals: no output of type {}", self.out);
@@ -384,7 +463,19 @@ impl WindowKind {
             WindowKind::Days => 1,
             WindowKind::FirstDay => 2,
             WindowKind::LastDay => 3,
+            WindowKind::Min => 4,
+            WindowKind::Max => 5,
+            WindowKind::Distinct => 6,
         }
+    }
+
+    /// Whether the output reads only rows whose value is above zero (the rows with an
+    /// event, for counts).
+    fn positive_only(self) -> bool {
+        matches!(
+            self,
+            WindowKind::Days | WindowKind::FirstDay | WindowKind::LastDay
+        )
     }
 
     fn of_code(code: i64) -> Option<Self> {
@@ -393,6 +484,9 @@ impl WindowKind {
             WindowKind::Days,
             WindowKind::FirstDay,
             WindowKind::LastDay,
+            WindowKind::Min,
+            WindowKind::Max,
+            WindowKind::Distinct,
         ]
         .into_iter()
         .find(|k| k.code() == code)
@@ -491,25 +585,109 @@ struct TotalOutput {
 /// the vectors' regrowth, per row made that about 285 ns a row, 1.8 s of compute in the
 /// benchmark's backfill: docs/benchmarks.md, twenty-second measurement. Appending here is
 /// sequential; the rows are put in key order once, when a key's totals are computed.)
+///
+/// A tile row keeps only the values of its [`Layout`]: a backfill's rows come from
+/// several tables (each source's tiles, each distinct-value tile), and each table fills
+/// only its own value columns, the others being NULL. Storing every slot of every row
+/// made a wide pipeline's rows several times larger than their values.
 #[derive(Debug, Default)]
 struct Arrived {
     /// Group index of each tile row.
     group: Vec<u32>,
-    tn: Vec<i64>,
-    vn: Vec<i64>,
-    /// `slots` values per tile row, row after row ([`NULL_X`] for NULL).
+    /// Event day and first visible day of each tile row (day numbers fit 32 bits).
+    tn: Vec<i32>,
+    vn: Vec<i32>,
+    /// Each tile row's layout (an index into `layouts`) and where its values start in
+    /// `x`.
+    layout: Vec<u16>,
+    at: Vec<u32>,
+    /// The values of each tile row's layout, row after row ([`NULL_X`] for NULL).
     x: Vec<i128>,
+    layouts: Layouts,
     /// Group index of each span row.
     span_group: Vec<u32>,
     spans: Vec<(i64, i64)>,
 }
 
+/// The slots a tile row holds values for, ascending (the row's other slots are NULL).
+type Layout = Vec<u16>;
+
+/// The layouts met so far, numbered in the order they were met.
+#[derive(Debug, Default, Clone)]
+struct Layouts {
+    all: Vec<Layout>,
+    ids: HashMap<Layout, u16>,
+}
+
+impl Layouts {
+    /// The number of `layout`, numbered now if new. Past `u16::MAX` layouts (never met: a
+    /// backfill has a few), rows take `every` (all slots), which always fits.
+    fn id(&mut self, layout: Layout, every: usize) -> u16 {
+        if let Some(id) = self.ids.get(&layout) {
+            return *id;
+        }
+        let layout = if self.all.len() < usize::from(u16::MAX) {
+            layout
+        } else {
+            (0..every as u16).collect()
+        };
+        if let Some(id) = self.ids.get(&layout) {
+            return *id;
+        }
+        let id = self.all.len() as u16;
+        self.ids.insert(layout.clone(), id);
+        self.all.push(layout);
+        id
+    }
+}
+
+/// A day number as stored.
+fn day32(d: i64, what: &str) -> Result<i32> {
+    match i32::try_from(d) {
+        Ok(d) => Ok(d),
+        Err(_) => exec_err!("{WINDOW_TOTALS}: the day number {what} = {d} is out of range"),
+    }
+}
+
 impl Arrived {
     fn bytes(&self) -> usize {
         (self.group.capacity() + self.span_group.capacity()) * 4
-            + (self.tn.capacity() + self.vn.capacity()) * 8
+            + (self.tn.capacity() + self.vn.capacity() + self.at.capacity()) * 4
+            + self.layout.capacity() * 2
             + self.x.capacity() * 16
             + self.spans.capacity() * 16
+    }
+
+    /// Appends a tile row of group `g`: `value(slot)` for each slot of `layout`.
+    fn push(
+        &mut self,
+        g: u32,
+        tn: i64,
+        vn: i64,
+        layout: u16,
+        value: impl Fn(u16) -> i128,
+    ) -> Result<()> {
+        let Ok(at) = u32::try_from(self.x.len()) else {
+            return exec_err!(
+                "{WINDOW_TOTALS}: more than {} values in one grouping (a smaller range of keys, or a memory limit, makes fewer)",
+                u32::MAX
+            );
+        };
+        self.group.push(g);
+        self.tn.push(day32(tn, "tn")?);
+        self.vn.push(day32(vn, "vn")?);
+        self.layout.push(layout);
+        self.at.push(at);
+        let slots = &self.layouts.all[usize::from(layout)];
+        self.x.extend(slots.iter().map(|s| value(*s)));
+        Ok(())
+    }
+
+    /// Tile row `r`'s slots and their values.
+    fn values(&self, r: usize) -> (&[u16], &[i128]) {
+        let slots = &self.layouts.all[usize::from(self.layout[r])];
+        let at = self.at[r] as usize;
+        (slots, &self.x[at..at + slots.len()])
     }
 
     /// The indices of `of` (group indices) below `n`, grouped by group, in arrival order
@@ -545,13 +723,18 @@ impl Arrived {
         let kept_rows = self.group.len() - order.len();
         let kept_spans = self.span_group.len() - span_order.len();
         let all = std::mem::take(self);
+        self.layouts = all.layouts.clone();
         if kept_rows > 0 || kept_spans > 0 {
             for (i, &g) in all.group.iter().enumerate() {
                 if g as usize >= n {
+                    let (_, x) = all.values(i);
                     self.group.push(g - n as u32);
                     self.tn.push(all.tn[i]);
                     self.vn.push(all.vn[i]);
-                    self.x.extend_from_slice(&all.x[i * slots..(i + 1) * slots]);
+                    self.layout.push(all.layout[i]);
+                    // Fewer values than before: below `u32::MAX` as they were.
+                    self.at.push(self.x.len() as u32);
+                    self.x.extend_from_slice(x);
                 }
             }
             for (i, &g) in all.span_group.iter().enumerate() {
@@ -600,9 +783,14 @@ impl Grouped {
             .map(|&i| self.rows.spans[i as usize])
     }
 
-    /// The stored values of tile row `r`.
-    fn x(&self, r: usize) -> &[i128] {
-        &self.rows.x[r * self.slots..(r + 1) * self.slots]
+    /// Every slot's value of tile row `r` ([`NULL_X`] outside its layout), into `out`.
+    fn x(&self, r: usize, out: &mut Vec<i128>) {
+        let at = out.len();
+        out.resize(at + self.slots, NULL_X);
+        let (slots, values) = self.rows.values(r);
+        for (s, v) in slots.iter().zip(values) {
+            out[at + usize::from(*s)] = *v;
+        }
     }
 
     /// The snapshot days of group `g`, ascending.
@@ -629,7 +817,7 @@ impl Grouped {
 struct KeyRows {
     tn: Vec<i64>,
     vn: Vec<i64>,
-    /// `slots` values per row, as in [`Arrived::x`].
+    /// `slots` values per row ([`NULL_X`] for NULL).
     x: Vec<i128>,
 }
 
@@ -645,7 +833,7 @@ impl KeyRows {
     /// overlap; the order across groups is followed, so the next key's first rows are
     /// fetched too.
     fn gather(&mut self, keys: &Grouped, g: usize) {
-        let (rows, slots) = (&keys.rows, keys.slots);
+        let rows = &keys.rows;
         let (from, to) = (keys.starts[g], keys.starts[g + 1]);
         self.tn.clear();
         self.vn.clear();
@@ -655,13 +843,18 @@ impl KeyRows {
                 let a = ahead as usize;
                 prefetch(rows.tn.as_ptr().wrapping_add(a));
                 prefetch(rows.vn.as_ptr().wrapping_add(a));
-                prefetch(rows.x.as_ptr().wrapping_add(a * slots));
+                prefetch(rows.at.as_ptr().wrapping_add(a));
+                prefetch(rows.layout.as_ptr().wrapping_add(a));
+            }
+            // Where a row's values are is known once its `at` is in: half as far ahead.
+            if let Some(&ahead) = keys.order.get(from + i + PREFETCH_AHEAD / 2) {
+                let at = rows.at[ahead as usize] as usize;
+                prefetch(rows.x.as_ptr().wrapping_add(at));
             }
             let r = r as usize;
-            self.tn.push(rows.tn[r]);
-            self.vn.push(rows.vn[r]);
-            self.x
-                .extend_from_slice(&rows.x[r * slots..(r + 1) * slots]);
+            self.tn.push(i64::from(rows.tn[r]));
+            self.vn.push(i64::from(rows.vn[r]));
+            keys.x(r, &mut self.x);
         }
     }
 }
@@ -725,6 +918,19 @@ impl KeyTotals {
                 return plan_err!("{WINDOW_TOTALS}: output {m} ({kind:?}) takes no window bound");
             }
             let arg = 4 + 3 * m + 2;
+            // DOUBLEs are stored in their order, not their value: only least and greatest
+            // values mean anything over them; a count of distinct values is a BIGINT.
+            let x = &types[arg];
+            let fits = match kind {
+                WindowKind::Min | WindowKind::Max => true,
+                WindowKind::Distinct => matches!(x, DataType::Int64 | DataType::UInt64),
+                _ => *x != DataType::Float64,
+            };
+            if !fits {
+                return plan_err!(
+                    "{WINDOW_TOTALS}: output {m} ({kind:?}) does not take {x} values"
+                );
+            }
             let slot = match slot_args
                 .iter()
                 .position(|a| *args.exprs[*a] == *args.exprs[arg])
@@ -793,7 +999,17 @@ impl GroupsAccumulator for KeyTotals {
             .iter()
             .map(|a| Values::of(&values[*a]))
             .collect::<Result<Vec<_>>>()?;
+        // The batch's layout: the slots with a value in some row (a UNION's batch comes
+        // from one of its tables, which fills only its own columns).
+        let present: Layout = self
+            .slot_args
+            .iter()
+            .enumerate()
+            .filter(|(_, a)| values[**a].null_count() < values[**a].len())
+            .map(|(s, _)| s as u16)
+            .collect();
         let rows = &mut self.rows;
+        let layout = rows.layouts.id(present, self.slot_args.len());
         for (i, &g) in group_indices.iter().enumerate() {
             if opt_filter.is_some_and(|f| !f.is_valid(i) || !f.value(i)) {
                 continue;
@@ -802,10 +1018,9 @@ impl GroupsAccumulator for KeyTotals {
             let g = g as u32;
             match (int_at(tn, i), int_at(vn, i)) {
                 (Some(t), Some(v)) => {
-                    rows.group.push(g);
-                    rows.tn.push(t);
-                    rows.vn.push(v);
-                    rows.x.extend(xs.iter().map(|x| x.at(i).unwrap_or(NULL_X)));
+                    rows.push(g, t, v, layout, |s| {
+                        xs[usize::from(s)].at(i).unwrap_or(NULL_X)
+                    })?;
                 }
                 (Some(_), None) => {}
                 (None, _) => {
@@ -841,7 +1056,7 @@ impl GroupsAccumulator for KeyTotals {
             .outputs
             .iter()
             .map(|o| {
-                let set = (o.slot, o.kind != WindowKind::Sum);
+                let set = (o.slot, o.kind.positive_only());
                 sets.iter().position(|s| *s == set).unwrap_or_else(|| {
                     sets.push(set);
                     sets.len() - 1
@@ -919,8 +1134,8 @@ impl GroupsAccumulator for KeyTotals {
                 keys.order.iter().map(|&r| f(r as usize)),
             ))
         };
-        let tn = tile_values(&|r| keys.rows.tn[r]);
-        let vn = tile_values(&|r| keys.rows.vn[r]);
+        let tn = tile_values(&|r| i64::from(keys.rows.tn[r]));
+        let vn = tile_values(&|r| i64::from(keys.rows.vn[r]));
         let span_values = |f: &dyn Fn((i64, i64)) -> i64| -> ArrayRef {
             Arc::new(Int64Array::from_iter_values(
                 groups.clone().flat_map(|g| keys.spans(g).map(f)),
@@ -928,14 +1143,14 @@ impl GroupsAccumulator for KeyTotals {
         };
         let s = span_values(&|p| p.0);
         let e = span_values(&|p| p.1);
-        let x: Decimal128Array = keys
-            .order
-            .iter()
-            .flat_map(|&r| {
-                keys.x(r as usize)
-                    .iter()
-                    .map(|v| (*v != NULL_X).then_some(*v))
-            })
+        // Every slot of every row (NULL outside its layout).
+        let mut all = Vec::with_capacity(keys.order.len() * keys.slots);
+        for &r in &keys.order {
+            keys.x(r as usize, &mut all);
+        }
+        let x: Decimal128Array = all
+            .into_iter()
+            .map(|v| (v != NULL_X).then_some(v))
             .collect();
         let x = Arc::new(x.with_precision_and_scale(38, 0)?);
         let n_x = n_tiles.iter().map(|n| n * keys.slots).collect();
@@ -978,20 +1193,38 @@ impl GroupsAccumulator for KeyTotals {
             return exec_err!("{WINDOW_TOTALS}: the state's values are not DECIMAL");
         };
         let slots = self.slot_args.len();
+        // The batch's layout: the slots with a value in some row.
+        let mut has = vec![false; slots];
+        for i in 0..group_indices.len() {
+            let rx = x.value_offsets()[i] as usize..x.value_offsets()[i + 1] as usize;
+            for (j, at) in rx.enumerate() {
+                if xv.is_valid(at) {
+                    has[j % slots] = true;
+                }
+            }
+        }
+        let present: Layout = (0..slots as u16).filter(|s| has[usize::from(*s)]).collect();
         let rows = &mut self.rows;
+        let layout = rows.layouts.id(present, slots);
         for (i, &g) in group_indices.iter().enumerate() {
             // Below `u32::MAX`: checked by `grow`.
             let g = g as u32;
             let r = tn.value_offsets()[i] as usize..tn.value_offsets()[i + 1] as usize;
-            rows.group.extend(std::iter::repeat_n(g, r.len()));
-            rows.tn.extend_from_slice(&tnv.values()[r.clone()]);
-            rows.vn.extend_from_slice(&vnv.values()[r.clone()]);
             let rx = x.value_offsets()[i] as usize..x.value_offsets()[i + 1] as usize;
             if rx.len() != r.len() * slots {
                 return exec_err!("{WINDOW_TOTALS}: a state row has the wrong number of values");
             }
-            rows.x
-                .extend(rx.map(|j| if xv.is_valid(j) { xv.value(j) } else { NULL_X }));
+            for (k, j) in r.enumerate() {
+                let first = rx.start + k * slots;
+                rows.push(g, tnv.value(j), vnv.value(j), layout, |s| {
+                    let at = first + usize::from(s);
+                    if xv.is_valid(at) {
+                        xv.value(at)
+                    } else {
+                        NULL_X
+                    }
+                })?;
+            }
             let r = s.value_offsets()[i] as usize..s.value_offsets()[i + 1] as usize;
             rows.span_group.extend(std::iter::repeat_n(g, r.len()));
             rows.spans.extend(r.map(|j| (sv.value(j), ev.value(j))));
@@ -1189,22 +1422,31 @@ mod tests {
 
     /// Taking the first groups (DataFusion's `EmitTo::First`, after a spilled grouping is
     /// read back in key order) hands over their rows by key in arrival order, and keeps
-    /// the later groups' rows under group indices lowered by as many.
+    /// the later groups' rows under group indices lowered by as many, with their values
+    /// and layouts.
     #[test]
     fn taking_the_first_groups_keeps_the_rest_renumbered() {
         let mut rows = Arrived::default();
-        // (group, tn, x0, x1) in arrival order; spans for groups 1 and 2.
+        let both = rows.layouts.id(vec![0, 1], 2);
+        let second = rows.layouts.id(vec![1], 2);
+        // (group, tn, x0, x1) in arrival order, the row of day 13 with slot 1 only;
+        // spans for groups 1 and 2.
         for (g, t) in [(2, 10), (0, 11), (1, 12), (2, 13), (0, 14), (3, 15)] {
-            rows.group.push(g);
-            rows.tn.push(t);
-            rows.vn.push(t + 100);
-            rows.x.extend([t as i128, -(t as i128)]);
+            let layout = if t == 13 { second } else { both };
+            rows.push(g, t, t + 100, layout, |s| {
+                if s == 0 {
+                    t.into()
+                } else {
+                    -i128::from(t)
+                }
+            })
+            .unwrap();
         }
         rows.span_group.extend([2, 1]);
         rows.spans.extend([(1, 3), (4, 4)]);
         let taken = rows.take(2, 2);
         assert_eq!(taken.len(), 2);
-        let tn = |g: usize| -> Vec<i64> {
+        let tn = |g: usize| -> Vec<i32> {
             taken
                 .tiles(g)
                 .iter()
@@ -1213,18 +1455,26 @@ mod tests {
         };
         assert_eq!(tn(0), [11, 14]);
         assert_eq!(tn(1), [12]);
-        assert_eq!(taken.x(taken.tiles(0)[1] as usize), [14, -14]);
+        let mut x = Vec::new();
+        taken.x(taken.tiles(0)[1] as usize, &mut x);
+        assert_eq!(x, [14, -14]);
         assert_eq!(taken.spans(1).collect::<Vec<_>>(), [(4, 4)]);
         assert_eq!(taken.days(0), Vec::<i64>::new());
-        // Groups 2 and 3 are now 0 and 1, their rows still in arrival order.
+        // Groups 2 and 3 are now 0 and 1, their rows still in arrival order; the row of
+        // day 13 still has only slot 1.
         assert_eq!(rows.group, [0, 0, 1]);
         assert_eq!(rows.tn, [10, 13, 15]);
         assert_eq!(rows.vn, [110, 113, 115]);
-        assert_eq!(rows.x, [10, -10, 13, -13, 15, -15]);
+        assert_eq!(rows.layout, [both, second, both]);
+        assert_eq!(rows.at, [0, 2, 3]);
+        assert_eq!(rows.x, [10, -10, -13, 15, -15]);
         assert_eq!(rows.span_group, [0]);
         assert_eq!(rows.spans, [(1, 3)]);
         let rest = rows.take(2, 2);
         assert_eq!(rest.days(0), [1, 2, 3]);
+        let mut x = Vec::new();
+        rest.x(rest.tiles(0)[1] as usize, &mut x);
+        assert_eq!(x, [NULL_X, -13]);
         assert_eq!(rest.tiles(1).len(), 1);
         assert!(rows.group.is_empty() && rows.spans.is_empty());
     }
@@ -1299,7 +1549,9 @@ mod tests {
                     CAST((i * 7919) % 60 AS BIGINT) AS tn,
                     CAST((i * 7919) % 60 + 1 + CASE WHEN i % 4 = 0 THEN (i * 31) % 10 ELSE 0 END AS BIGINT) AS vn,
                     CAST((i * 104729) % 21 - 6 AS BIGINT) AS x,
-                    CAST((i * 104729) % 21 - 6 AS DECIMAL(38, 12)) / 7 AS y
+                    CAST((i * 104729) % 21 - 6 AS DECIMAL(38, 12)) / 7 AS y,
+                    CAST((i * 104729) % 21 - 6 AS DOUBLE) / 7 AS f,
+                    CASE WHEN i % 9 = 0 THEN NULL ELSE CAST((i * 13) % 5 AS BIGINT) END AS v
                  FROM unnest(range(0, 1200)) AS r(i)",
             )
             .await
@@ -1310,8 +1562,8 @@ mod tests {
             )
             .await
             .unwrap();
-            let union = "SELECT k, tn, vn, CAST(NULL AS BIGINT) AS s, CAST(NULL AS BIGINT) AS e, x, y FROM tiles
-                UNION ALL SELECT k, NULL, NULL, d AS s, d AS e, NULL, NULL FROM spine";
+            let union = "SELECT k, tn, vn, CAST(NULL AS BIGINT) AS s, CAST(NULL AS BIGINT) AS e, x, y, f, v FROM tiles
+                UNION ALL SELECT k, NULL, NULL, d AS s, d AS e, NULL, NULL, NULL, NULL FROM spine";
             let plan = text(&ctx, &format!("EXPLAIN {}", per_day(union, &["0, 7, x"]))).await;
             let mode = if one_phase {
                 "mode=SinglePartitioned"
@@ -1336,11 +1588,31 @@ mod tests {
                     "SUM(t.y) AS o1".to_string(),
                     "COUNT(DISTINCT CASE WHEN t.x > 0 THEN t.tn END) AS o2".to_string(),
                 ];
+                // Least and greatest of integers, decimals and floats (negative ones
+                // too); distinct values, some NULL.
+                for (kind, func, col) in [
+                    (4, "MIN", "x"),
+                    (5, "MAX", "x"),
+                    (5, "MAX", "y"),
+                    (4, "MIN", "f"),
+                    (5, "MAX", "f"),
+                    (6, "COUNT(DISTINCT", "v"),
+                ] {
+                    ours.push(format!("{kind}, {w}, {col}"));
+                    let close = if func.contains('(') { ")" } else { "" };
+                    theirs.push(format!("{func}(t.{col}){close} AS o{}", theirs.len()));
+                }
                 if !bounded {
                     ours.push(format!("2, {w}, x"));
                     ours.push(format!("3, {w}, x"));
-                    theirs.push("MIN(CASE WHEN t.x > 0 THEN t.tn END) AS o3".to_string());
-                    theirs.push("MAX(CASE WHEN t.x > 0 THEN t.tn END) AS o4".to_string());
+                    theirs.push(format!(
+                        "MIN(CASE WHEN t.x > 0 THEN t.tn END) AS o{}",
+                        theirs.len()
+                    ));
+                    theirs.push(format!(
+                        "MAX(CASE WHEN t.x > 0 THEN t.tn END) AS o{}",
+                        theirs.len()
+                    ));
                 }
                 let outputs: Vec<&str> = ours.iter().map(String::as_str).collect();
                 let mine = text(&ctx, &per_day(union, &outputs)).await;
@@ -1406,5 +1678,8 @@ mod tests {
         assert!(e.contains("must be a constant"), "{e}");
         let e = err(per_day(rows, &["2, 5, x"])).await;
         assert!(e.contains("takes no window bound"), "{e}");
+        // DOUBLEs only for least and greatest values (they are stored in their order).
+        let e = err(per_day(rows, &["0, 5, CAST(x AS DOUBLE)"])).await;
+        assert!(e.contains("does not take Float64 values"), "{e}");
     }
 }
