@@ -4,11 +4,12 @@
 //! Binning, exactly:
 //! - The edges are the 10%, 20%, ..., 90% quantiles of the reference's non-null values,
 //!   computed with linear interpolation (the values of DataFusion's `percentile_cont`,
-//!   found by one sort per feature: `quality::quantiles`), sorted, with
+//!   found by selecting the ranks they need: `quality::quantiles`), sorted, with
 //!   repeated edges kept once. So a feature with many ties (a count that is mostly 0) has
 //!   fewer than 10 value bins.
 //! - With edges e1 < ... < ek, value bin j (1..=k+1) holds values v with e(j-1) <= v < e(j)
-//!   (e0 = -inf, e(k+1) = +inf); bin 0 holds nulls, so a change in the null share is drift.
+//!   (e0 = -inf, e(k+1) = +inf), compared as SQL compares doubles (NaN above every
+//!   edge, -0 equal to +0); bin 0 holds nulls, so a change in the null share is drift.
 //! - Shares are counts divided by the number of rows. A bin empty on both sides is left
 //!   out; a bin empty on one side only gets the share [`EMPTY_BIN_SHARE`] on that side, so
 //!   that the logarithm stays finite (common practice).
@@ -35,11 +36,15 @@ pub fn edges(quantiles: &[Option<f64>]) -> Vec<f64> {
     e
 }
 
-/// The bin of a value: 0 for null, else 1 + the number of edges less than or equal to it.
+/// The bin of a value: 0 for null, else 1 + the number of edges (sorted, as [`edges`]
+/// gives them) less than or equal to it, compared as SQL compares doubles: NaN above
+/// everything, -0 equal to +0.
 pub fn bin_of(value: Option<f64>, edges: &[f64]) -> usize {
+    // Adding +0 turns -0 into +0 and leaves every other value as it is.
+    let key = |x: f64| x + 0.0;
     match value {
         None => 0,
-        Some(v) => 1 + edges.iter().filter(|e| **e <= v).count(),
+        Some(v) => 1 + edges.partition_point(|e| key(*e).total_cmp(&key(v)).is_le()),
     }
 }
 
@@ -97,7 +102,8 @@ pub fn quantile_from_ranks(q: f64, n: u64, lower: f64, upper: f64) -> f64 {
 /// SQL of one query returning, per side (`__side` 0: reference rows of `ref_table`
 /// matching `ref_filter`, 1: current rows of `cur_table` matching `cur_filter`), the count
 /// of every bin of every feature (columns `b{feature index}_{bin}` after `__side`).
-pub fn bin_counts_sql(
+#[cfg(test)]
+pub(crate) fn bin_counts_sql(
     (ref_table, ref_filter): (&str, &str),
     (cur_table, cur_filter): (&str, &str),
     features: &[(String, Vec<f64>)],

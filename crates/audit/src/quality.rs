@@ -5,7 +5,7 @@
 //! while writing (`daymark_engine::build`); these checks add what needs earlier days.
 
 use crate::psi;
-use crate::tables::{self, collect, count, first_row};
+use crate::tables::{self, collect, count};
 use crate::AuditError;
 use chrono::{Duration, NaiveDate};
 use datafusion::arrow::datatypes::{DataType, Field, Schema};
@@ -26,9 +26,21 @@ use std::sync::Arc;
 const STAGED: &str = "__staged";
 const PUBLISHED: &str = "__published";
 
+/// Feature values held in memory at once while computing drift: the reference rows'
+/// values of as many features as fit are read together (all of a wide pipeline's over a
+/// 28-day reference window at a few hundred thousand keys), feature by feature beyond.
+/// 32M doubles are 256 MiB.
+const VALUES_IN_MEMORY: u64 = 32 << 20;
+
 /// PSI of each feature between a reference (rows of `ref_table` matching `ref_filter`) and
 /// a current distribution, binned by the reference's deciles. Features with no reference
 /// or no current rows are left out.
+///
+/// The values are read once into memory and binned there: the deciles by selecting only
+/// the ranks they need ([`quantiles`]), the bins by the edges. One SQL query per feature
+/// of row numbers over a sort of its values, and a second of bin counts, took about
+/// 2.4 s of each day of a backfill of the demo pipeline at 35,000 keys
+/// (docs/benchmarks.md, twenty-sixth measurement).
 pub async fn psi_between(
     ctx: &SessionContext,
     ref_table: &str,
@@ -37,129 +49,141 @@ pub async fn psi_between(
     cur_filter: &str,
     features: &[String],
 ) -> Result<BTreeMap<String, f64>, AuditError> {
-    if features.is_empty() {
-        return Ok(BTreeMap::new());
-    }
-    let q = quantiles(ctx, ref_table, ref_filter, features).await?;
-    let binned: Vec<(String, Vec<f64>)> = features
-        .iter()
-        .enumerate()
-        .map(|(i, f)| {
-            let qs = q.get(i * 9..i * 9 + 9).unwrap_or(&[]);
-            (f.clone(), psi::edges(qs))
-        })
-        .collect();
-    let batches = collect(
-        ctx,
-        &psi::bin_counts_sql((ref_table, ref_filter), (cur_table, cur_filter), &binned),
-        "bin counts",
-    )
-    .await?;
-    let (mut r, mut c) = (Vec::new(), Vec::new());
-    for b in &batches {
-        for row in 0..b.num_rows() {
-            let counts: Vec<u64> = (1..b.num_columns())
-                .map(|i| tables::value_f64(b.column(i), row).unwrap_or(0.0) as u64)
-                .collect();
-            match tables::value_f64(b.column(0), row) {
-                Some(0.0) => r = counts,
-                _ => c = counts,
-            }
-        }
-    }
     let mut out = BTreeMap::new();
-    let mut at = 0;
-    for (f, e) in &binned {
-        let n = e.len() + 2;
-        if let (Some(rs), Some(cs)) = (r.get(at..at + n), c.get(at..at + n)) {
-            if let Some(v) = psi::psi(rs, cs) {
+    if features.is_empty() {
+        return Ok(out);
+    }
+    let n_ref = count(
+        &collect(
+            ctx,
+            &format!(
+                "SELECT COUNT(*) FROM {} WHERE {ref_filter}",
+                daymark_engine::sql::ident(ref_table)
+            ),
+            "reference rows",
+        )
+        .await?,
+    )
+    .max(1) as u64;
+    let per_read = (VALUES_IN_MEMORY / n_ref).max(1) as usize;
+    for group in features.chunks(per_read) {
+        let reference = read_values(ctx, ref_table, ref_filter, group).await?;
+        let current = read_values(ctx, cur_table, cur_filter, group).await?;
+        for ((f, mut r), c) in group.iter().zip(reference).zip(current) {
+            let e = psi::edges(&quantiles(&mut r.values));
+            if let Some(v) = psi::psi(&r.bin_counts(&e), &c.bin_counts(&e)) {
                 out.insert(f.clone(), v);
             }
         }
-        at += n;
     }
     Ok(out)
 }
 
-/// The nine quantiles of [`psi::QUANTILES`] of each of `features` (nine values per feature,
-/// in order; `None` where a feature has no value) over `table` rows matching `filter`,
-/// exactly as DataFusion's `percentile_cont` gives them.
-///
-/// Computed by sorting each feature's values once and reading only the ranks the
-/// quantiles need: nine `percentile_cont` per feature kept nine copies of every value in
-/// memory, unspilled (about 200 MB for the demo pipeline's 36 features over 28 days), and
-/// took 0.43 s of a 1.4 s daily build (docs/benchmarks.md, seventeenth measurement).
-pub async fn quantiles(
+/// One feature's values over some rows, as doubles.
+#[derive(Debug, Default)]
+pub struct FeatureValues {
+    /// The values that are not NULL, in no particular order.
+    pub values: Vec<f64>,
+    /// The number of NULLs.
+    pub nulls: u64,
+}
+
+impl FeatureValues {
+    /// Counts per bin of [`psi::bin_of`] (NULLs, then below the first edge, then from each
+    /// edge on).
+    fn bin_counts(&self, edges: &[f64]) -> Vec<u64> {
+        let mut counts = vec![0u64; edges.len() + 2];
+        counts[0] = self.nulls;
+        for v in &self.values {
+            counts[psi::bin_of(Some(*v), edges)] += 1;
+        }
+        counts
+    }
+}
+
+/// `features` of the rows of `table` matching `filter`, cast to doubles.
+pub async fn read_values(
     ctx: &SessionContext,
     table: &str,
     filter: &str,
     features: &[String],
-) -> Result<Vec<Option<f64>>, AuditError> {
+) -> Result<Vec<FeatureValues>, AuditError> {
+    use datafusion::arrow::array::{Array, AsArray};
+    use datafusion::arrow::datatypes::Float64Type;
     use daymark_engine::sql::ident;
-    let value = |f: &str| format!("CAST({} AS DOUBLE)", ident(f));
-    let counts = first_row(
-        &collect(
-            ctx,
-            &format!(
-                "SELECT {} FROM {} WHERE {filter}",
-                features
-                    .iter()
-                    .map(|f| format!("COUNT({})", value(f)))
-                    .collect::<Vec<_>>()
-                    .join(", "),
-                ident(table)
-            ),
-            "reference value counts",
-        )
-        .await?,
-    );
-    let counts: Vec<u64> = (0..features.len())
-        .map(|i| counts.get(i).copied().flatten().unwrap_or(0.0) as u64)
-        .collect();
-    let mut branches = Vec::new();
-    for (i, f) in features.iter().enumerate() {
-        let n = counts[i];
-        if n == 0 {
-            continue;
-        }
-        let ranks: BTreeSet<u64> = psi::QUANTILES
-            .iter()
-            .flat_map(|q| {
-                let (lo, hi) = psi::quantile_ranks(*q, n);
-                [lo, hi]
-            })
-            .collect();
-        let ranks: Vec<String> = ranks.iter().map(|r| r.to_string()).collect();
-        let v = value(f);
-        branches.push(format!(
-            "SELECT CAST({i} AS BIGINT) AS __f, __rn, __v FROM (SELECT {v} AS __v, ROW_NUMBER() OVER (ORDER BY {v}) AS __rn FROM {} WHERE ({filter}) AND {v} IS NOT NULL) WHERE __rn IN ({})",
-            ident(table),
-            ranks.join(", ")
-        ));
+    let mut out: Vec<FeatureValues> = features.iter().map(|_| Default::default()).collect();
+    if features.is_empty() {
+        return Ok(out);
     }
-    let mut at: BTreeMap<(usize, u64), f64> = BTreeMap::new();
-    if !branches.is_empty() {
-        let batches = collect(ctx, &branches.join(" UNION ALL "), "reference quantiles").await?;
-        for b in &batches {
-            for row in 0..b.num_rows() {
-                let cell = |c: usize| tables::value_f64(b.column(c), row);
-                if let (Some(f), Some(rank), Some(v)) = (cell(0), cell(1), cell(2)) {
-                    at.insert((f as usize, rank as u64), v);
-                }
+    let columns: Vec<String> = features
+        .iter()
+        .map(|f| format!("CAST({} AS DOUBLE) AS {}", ident(f), ident(f)))
+        .collect();
+    let sql = format!(
+        "SELECT {} FROM {} WHERE {filter}",
+        columns.join(", "),
+        ident(table)
+    );
+    for b in collect(ctx, &sql, "feature values").await? {
+        for (c, into) in b.columns().iter().zip(out.iter_mut()) {
+            let Some(a) = c.as_primitive_opt::<Float64Type>() else {
+                continue;
+            };
+            into.nulls += a.null_count() as u64;
+            if a.null_count() == 0 {
+                into.values.extend_from_slice(a.values());
+            } else {
+                into.values.extend(a.iter().flatten());
             }
         }
     }
-    let mut out = Vec::with_capacity(features.len() * psi::QUANTILES.len());
-    for (i, n) in counts.iter().enumerate() {
-        for q in psi::QUANTILES {
-            let (lo, hi) = psi::quantile_ranks(q, *n);
-            out.push(match (at.get(&(i, lo)), at.get(&(i, hi))) {
-                (Some(l), Some(u)) if *n > 0 => Some(psi::quantile_from_ranks(q, *n, *l, *u)),
-                _ => None,
-            });
-        }
-    }
     Ok(out)
+}
+
+/// The nine quantiles of [`psi::QUANTILES`] of `values` (`None` for each when there are
+/// none), exactly as DataFusion's `percentile_cont` gives them: linear interpolation
+/// between the values at the ranks around `q * (n - 1)`, values in IEEE 754's total order.
+///
+/// Only the ranks the quantiles need are put in place (nested selections around them),
+/// not the whole of `values`, which is left reordered.
+pub fn quantiles(values: &mut [f64]) -> Vec<Option<f64>> {
+    let n = values.len() as u64;
+    if n == 0 {
+        return vec![None; psi::QUANTILES.len()];
+    }
+    let ranks: BTreeSet<usize> = psi::QUANTILES
+        .iter()
+        .flat_map(|q| {
+            let (lo, hi) = psi::quantile_ranks(*q, n);
+            [lo as usize - 1, hi as usize - 1]
+        })
+        .collect();
+    let ranks: Vec<usize> = ranks.into_iter().collect();
+    select_ranks(values, &ranks);
+    psi::QUANTILES
+        .iter()
+        .map(|q| {
+            let (lo, hi) = psi::quantile_ranks(*q, n);
+            let at = |r: u64| values[r as usize - 1];
+            Some(psi::quantile_from_ranks(*q, n, at(lo), at(hi)))
+        })
+        .collect()
+}
+
+/// Puts the values of `ranks` (ascending, 0-based, below `values.len()`) where a sort of
+/// `values` in total order would: the middle rank first, then the ranks on each side within
+/// their side.
+fn select_ranks(values: &mut [f64], ranks: &[usize]) {
+    if ranks.is_empty() || values.is_empty() {
+        return;
+    }
+    let mid = ranks.len() / 2;
+    let r = ranks[mid];
+    values.select_nth_unstable_by(r, f64::total_cmp);
+    let (below, above) = values.split_at_mut(r);
+    select_ranks(below, &ranks[..mid]);
+    let shifted: Vec<usize> = ranks[mid + 1..].iter().map(|x| x - r - 1).collect();
+    select_ranks(&mut above[1..], &shifted);
 }
 
 /// SQL condition selecting published days `from..=to` (partition column `dt`).
@@ -445,6 +469,67 @@ impl StagedCheck for DailyChecks {
 mod tests {
     use super::*;
 
+    /// The bins counted in memory are the bins of the SQL definition
+    /// ([`psi::bin_counts_sql`], DataFusion comparing the doubles) on values with NULLs,
+    /// ties, both zeros, infinities and NaN, over edges from the reference's deciles and
+    /// over edges at 0 and at a repeated value.
+    #[tokio::test]
+    async fn bins_in_memory_equal_the_sql_definition() {
+        use datafusion::arrow::array::{Float64Array, Int64Array, RecordBatch};
+        let mut x: Vec<Option<f64>> = vec![
+            None,
+            Some(f64::NAN),
+            Some(-0.0),
+            Some(0.0),
+            Some(f64::INFINITY),
+            Some(f64::NEG_INFINITY),
+            Some(2.5),
+            Some(2.5),
+            Some(-1.0),
+        ];
+        x.extend((0..200).map(|i| (i % 7 != 0).then(|| ((i * 37) % 23) as f64 / 4.0 - 2.0)));
+        let side: Vec<i64> = (0..x.len() as i64).map(|i| i % 2).collect();
+        let schema = Arc::new(Schema::new(vec![
+            Field::new("side", DataType::Int64, false),
+            Field::new("x", DataType::Float64, true),
+        ]));
+        let batch = RecordBatch::try_new(
+            schema,
+            vec![
+                Arc::new(Int64Array::from(side)),
+                Arc::new(Float64Array::from(x)),
+            ],
+        )
+        .unwrap();
+        let ctx = SessionContext::new();
+        ctx.register_batch("t", batch).unwrap();
+        let features = vec!["x".to_string()];
+        let mut reference = read_values(&ctx, "t", "side = 0", &features).await.unwrap();
+        let current = read_values(&ctx, "t", "side = 1", &features).await.unwrap();
+        assert!(current[0].values.iter().any(|v| v.is_nan()));
+        let deciles = psi::edges(&quantiles(&mut reference[0].values));
+        assert!(deciles.len() >= 5, "{deciles:?}");
+        for edges in [deciles, vec![0.0], vec![-0.0, 2.5], vec![]] {
+            let sql = psi::bin_counts_sql(
+                ("t", "side = 0"),
+                ("t", "side = 1"),
+                &[("x".to_string(), edges.clone())],
+            );
+            let batches = collect(&ctx, &sql, "test").await.unwrap();
+            let mut by_side: BTreeMap<u64, Vec<u64>> = BTreeMap::new();
+            for b in &batches {
+                for row in 0..b.num_rows() {
+                    let counts = (1..b.num_columns())
+                        .map(|c| tables::value_f64(b.column(c), row).unwrap() as u64)
+                        .collect();
+                    by_side.insert(tables::value_f64(b.column(0), row).unwrap() as u64, counts);
+                }
+            }
+            assert_eq!(reference[0].bin_counts(&edges), by_side[&0], "{edges:?}");
+            assert_eq!(current[0].bin_counts(&edges), by_side[&1], "{edges:?}");
+        }
+    }
+
     /// [`quantiles`] gives DataFusion's `percentile_cont` bit for bit (the definition
     /// `psi.rs` documents) on data with ties, nulls, integers, one value, two values and
     /// no values.
@@ -492,7 +577,12 @@ mod tests {
             "i <= 1",
             "FALSE",
         ] {
-            let ours = quantiles(&ctx, "t", filter, &features).await.unwrap();
+            let ours: Vec<Option<f64>> = read_values(&ctx, "t", filter, &features)
+                .await
+                .unwrap()
+                .into_iter()
+                .flat_map(|mut v| quantiles(&mut v.values))
+                .collect();
             let mut calls = Vec::new();
             for f in &features {
                 for q in psi::QUANTILES {
@@ -502,7 +592,7 @@ mod tests {
                 }
             }
             let sql = format!("SELECT {} FROM t WHERE {filter}", calls.join(", "));
-            let theirs = first_row(&collect(&ctx, &sql, "test").await.unwrap());
+            let theirs = tables::first_row(&collect(&ctx, &sql, "test").await.unwrap());
             assert_eq!(
                 bits(&ours),
                 bits(&theirs),

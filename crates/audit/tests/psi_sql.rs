@@ -1,4 +1,4 @@
-//! The drift query (reference deciles by DataFusion's `percentile_cont`, bin counts) on a
+//! The drift computation (reference deciles as DataFusion's `percentile_cont` gives them, bin counts) on a
 //! table small enough to work by hand.
 
 use datafusion::arrow::array::{Float64Array, RecordBatch, StringArray};

@@ -74,9 +74,11 @@ fn output_type(x: &DataType) -> Result<DataType> {
         DataType::UInt64 => DataType::UInt64,
         DataType::Decimal128(_, s) => DataType::Decimal128(38, *s),
         DataType::Float64 => DataType::Float64,
-        other => return plan_err!(
+        other => {
+            return plan_err!(
             "{WINDOW_TOTALS} takes BIGINT, unsigned BIGINT, DECIMAL or DOUBLE values, not {other}"
-        ),
+        )
+        }
     })
 }
 
