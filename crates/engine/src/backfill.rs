@@ -156,19 +156,51 @@ const DIRECT_BYTES_PER_WORK_ROW: u64 = 840;
 /// (docs/benchmarks.md, twenty-first measurement): so about 1.9 GB.
 const DIRECT_WORK_ROWS_PER_QUERY: u64 = 24_000_000;
 
+/// Outputs of the windowed totals per unit of [`direct_width`]: twice the benchmark
+/// pipeline's 12 (counts, sums with their row counts and active days, each in three
+/// windows), over which [`DIRECT_BYTES_PER_WORK_ROW`] and [`DIRECT_WORK_ROWS_PER_QUERY`]
+/// were measured.
+const MEASURED_DIRECT_OUTPUTS: u64 = 24;
+
+/// How many times the benchmark's a windowed-total query's working-set row weighs for
+/// `pipeline`: a tile row keeps a value per column its features read, and a snapshot row
+/// a total per output, so a row's memory grows with the outputs. Measured on the demo
+/// pipeline (47 outputs) at 35,000 keys, 91 days under `--memory-limit 1GiB`: at the
+/// benchmark's sizing a grouping failed to get 434 MB; a width of 2 peaked at 1,133 MiB
+/// (the range query 212 s), of 4 at 621 MiB (385 s: every range of keys reads every tile
+/// file again). Without a limit the demo pipeline's 91 days peaked at 3.0 GB either way
+/// (docs/benchmarks.md, twenty-sixth measurement).
+fn direct_width(pipeline: &Pipeline) -> u64 {
+    let outputs: u64 = pipeline
+        .features
+        .iter()
+        .map(|f| match &f.def {
+            FeatureDef::Aggregate {
+                agg: Aggregation::Sum | Aggregation::Mean,
+                ..
+            } => 2,
+            FeatureDef::Aggregate { .. } => 1,
+            FeatureDef::Derived { .. } => 0,
+        })
+        .sum();
+    outputs.div_ceil(MEASURED_DIRECT_OUTPUTS).max(1)
+}
+
 /// Working-set rows per backfill query: as the session was told, else what its memory
 /// limit holds, at most [`WORK_ROWS_PER_QUERY`] ([`DIRECT_WORK_ROWS_PER_QUERY`] for the
-/// windowed-total query, when `direct`).
-fn work_rows_per_query(ctx: &SessionContext, direct: bool) -> u64 {
+/// windowed-total query, when `direct` gives its [`direct_width`], which divides both).
+fn work_rows_per_query(ctx: &SessionContext, direct: Option<u64>) -> u64 {
     use datafusion::execution::memory_pool::MemoryLimit;
     let config = ctx.state().config().clone();
     if let Some(n) = config.get_extension::<crate::session::BackfillRowsPerQuery>() {
         return n.0;
     }
-    let (per_row, most) = if direct {
-        (DIRECT_BYTES_PER_WORK_ROW, DIRECT_WORK_ROWS_PER_QUERY)
-    } else {
-        (BYTES_PER_WORK_ROW, WORK_ROWS_PER_QUERY)
+    let (per_row, most) = match direct {
+        Some(width) => (
+            DIRECT_BYTES_PER_WORK_ROW * width,
+            DIRECT_WORK_ROWS_PER_QUERY / width,
+        ),
+        None => (BYTES_PER_WORK_ROW, WORK_ROWS_PER_QUERY),
     };
     match ctx.runtime_env().memory_pool.memory_limit() {
         MemoryLimit::Finite(limit) => (limit as u64 / per_row).clamp(1, most),
@@ -1268,6 +1300,15 @@ fn range_sql(
 /// 16 days there and for any range here (docs/benchmarks.md, fourteenth measurement).
 pub const TILE_ROWS_PER_DAY_BY_DAY: u64 = 90_000;
 
+/// Tile rows a windowed-total query reads for the cost of one day built from its pieces:
+/// the demo pipeline under `--memory-limit 1GiB` at 35,000 keys took 212 s for 22 ranges
+/// of keys over its tile rows (about 0.7 µs a tile row a range) where a day from its
+/// pieces took 1.6 s (docs/benchmarks.md, twenty-sixth measurement). [`build_days`] builds
+/// a range of such a pipeline day by day when its days times this are below its ranges
+/// of keys times its tile rows: only under a memory limit tight enough to cut it into
+/// many ranges.
+pub const DIRECT_TILE_ROWS_PER_DAY_BY_DAY: u64 = 2_300_000;
+
 /// The longest range of `first..=last`'s kind that [`build_days`] builds day by day:
 /// [`tile_rows_read`] over [`TILE_ROWS_PER_DAY_BY_DAY`] (or the session's
 /// [`crate::session::TileRowsPerDayByDay`]).
@@ -1319,8 +1360,9 @@ pub async fn tile_rows_read(
 /// cheaper of two ways, telling `on_day` of each published day:
 ///
 /// - all days from one set-based query ([`build_range`]) when the pipeline's aggregates
-///   are all windowed totals ([`direct_features`]), or when the range is longer than
-///   [`day_by_day_limit`];
+///   are all windowed totals ([`direct_features`]) and its ranges of keys read fewer tile
+///   rows than [`DIRECT_TILE_ROWS_PER_DAY_BY_DAY`] per day, or, for other pipelines, when
+///   the range is longer than [`day_by_day_limit`];
 /// - else one day at a time from its pieces (tiles at its windows' edges, week and month
 ///   roll-ups between; [`crate::rollups::plan_day`]), as a daily build does.
 #[allow(clippy::too_many_arguments)]
@@ -1338,12 +1380,24 @@ pub async fn build_days(
     let (Some(&first), Some(&last)) = (days.first(), days.last()) else {
         return Ok(Vec::new());
     };
+    let engine = |source| BuildError::Engine { day: first, source };
     let set_based = days.len() > 1
-        && (direct_features(pipeline, &tile_types(ctx, layouts).await)
-            || days.len() as u64
+        && if direct_features(pipeline, &tile_types(ctx, layouts).await) {
+            // Each range of keys reads every tile row again (a day's tile file is one row
+            // group: a range prunes none of it).
+            let rows = tile_rows_read(ctx, pipeline, layouts, first, last, mode)
+                .await
+                .map_err(engine)?;
+            let per_query = work_rows_per_query(ctx, Some(direct_width(pipeline)));
+            let ranges = rows.div_ceil(per_query.max(1)).max(1);
+            (days.len() as u64).saturating_mul(DIRECT_TILE_ROWS_PER_DAY_BY_DAY)
+                > ranges.saturating_mul(rows)
+        } else {
+            days.len() as u64
                 > day_by_day_limit(ctx, pipeline, layouts, first, last, mode)
                     .await
-                    .map_err(|source| BuildError::Engine { day: first, source })?);
+                    .map_err(engine)?
+        };
     if set_based {
         return build_range(
             ctx,
@@ -1410,7 +1464,10 @@ pub async fn build_range(
         first,
         last,
         mode,
-        work_rows_per_query(ctx, direct_features(pipeline, &types)),
+        work_rows_per_query(
+            ctx,
+            direct_features(pipeline, &types).then(|| direct_width(pipeline)),
+        ),
     )
     .await
     .map_err(engine(first))?;

@@ -335,9 +335,10 @@ async fn range_under_memory_limit(
 
 /// A 120-day backfill (2026-02-16 to 2026-06-15, across the daylight-saving change of
 /// 2026-03-08 in America/Chicago) of a small demo world with late arrivals and
-/// re-deliveries: the set-based range query equals the naive path for every cell of every
-/// day in both knowledge modes, and so does the per-day tiled query (the daily build) on
-/// every fifth day and the days around the change.
+/// re-deliveries: the set-based range query (every demo feature through the windowed
+/// totals, `window_totals.rs`) equals the naive path for every cell of every day in both
+/// knowledge modes, and so does the per-day tiled query (the daily build) on every fifth
+/// day and the days around the change.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn tiled_equals_naive_for_every_day_in_both_modes() {
     let dir = tempfile::tempdir().unwrap();
