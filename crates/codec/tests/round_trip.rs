@@ -14,7 +14,7 @@ use daymark_engine::rollups::plan_day;
 use daymark_engine::session::{session, EngineOptions};
 use daymark_engine::tiles::{layouts, prepare, tiled_snapshot_query};
 use daymark_engine::{inspect_sources, register_sources, snapshot_query};
-use daymark_spec::{Aggregation, FeatureDef, Knowledge, Pipeline};
+use daymark_spec::{Knowledge, Pipeline};
 use daymark_worldgen::{generate, WorldConfig};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -29,14 +29,16 @@ fn days(first: &str, last: &str) -> Vec<NaiveDate> {
     day(first).iter_days().take_while(|d| *d <= last).collect()
 }
 
-/// The demo pipeline over the world in `world`, writing to `out`.
-fn demo_pipeline(world: &Path, out: &Path) -> Pipeline {
+/// The demo pipeline over the world in `world`, writing to `out`, with `features` (YAML
+/// list items) added after its own.
+fn demo_pipeline(world: &Path, out: &Path, features: &str) -> Pipeline {
     // Read when the test runs: a test binary reused from a shared target folder keeps the
     // compile-time path of the checkout that built it.
     let root =
         std::env::var("CARGO_MANIFEST_DIR").unwrap_or_else(|_| env!("CARGO_MANIFEST_DIR").into());
     let text = std::fs::read_to_string(PathBuf::from(root).join("../../pipelines/demo.yaml"))
         .unwrap()
+        .replace("\nlabel:", &format!("{features}\nlabel:"))
         .replace("../demo-data/world/", &format!("{}/", world.display()))
         .replace(
             "output: ../demo-data/out",
@@ -45,24 +47,15 @@ fn demo_pipeline(world: &Path, out: &Path) -> Pipeline {
     daymark_spec::load_str(&text, None).unwrap()
 }
 
-/// The demo pipeline without the aggregates that are not windowed totals, so that its
-/// backfill takes the windowed-totals aggregate.
-fn totals_only(mut pipeline: Pipeline) -> Pipeline {
-    pipeline.features.retain(|f| {
-        !matches!(
-            f.def,
-            FeatureDef::Aggregate {
-                agg: Aggregation::Min
-                    | Aggregation::Max
-                    | Aggregation::First
-                    | Aggregation::Last
-                    | Aggregation::CountDistinct,
-                ..
-            }
-        )
-    });
-    pipeline
-}
+/// A greatest text value, which the windowed totals do not take: with it the demo
+/// pipeline's backfill takes the general query (daymark's running functions).
+const TEXT_MAXIMUM: &str = "
+  - name: last_genre_name_28d
+    source: plays
+    agg: max
+    expr: genre
+    window: 28d
+    fill: null";
 
 /// Every Parquet file under `dir` whose path has a `snapshots` folder, by relative path.
 fn snapshot_files(dir: &Path, base: &Path, found: &mut BTreeMap<String, RecordBatch>) {
@@ -126,11 +119,12 @@ fn assert_same(a: &RecordBatch, b: &RecordBatch, what: &str) {
 }
 
 /// Builds, in a session with `planner` (or DataFusion's own), in `out`:
-/// - the demo pipeline's snapshots of 2026-03-02..31 from one set-based query (the
-///   general query: daymark's running functions), then 2026-04-01..03 one day at a time
-///   from tiles and roll-ups (a daily build's query), all in each source's own mode;
-/// - the totals-only pipeline's snapshots of 2026-03-02..31, event time (the
-///   windowed-totals aggregate), in `out/totals`;
+/// - the demo pipeline's snapshots, with a greatest text value, of 2026-03-02..31 from one
+///   set-based query (the general query: daymark's running functions), then
+///   2026-04-01..03 one day at a time from tiles and roll-ups (a daily build's query), all
+///   in each source's own mode;
+/// - the demo pipeline's snapshots of 2026-03-02..31, event time (every feature through
+///   the windowed-totals aggregate), in `out/totals`;
 ///
 /// and returns every snapshot file's rows, with the naive snapshot of 2026-04-03 (as
 /// known) under `naive`.
@@ -144,7 +138,7 @@ async fn build_everything(
         ..Default::default()
     };
     let ctx = session(&opts).unwrap();
-    let pipeline = demo_pipeline(world, out);
+    let pipeline = demo_pipeline(world, out, TEXT_MAXIMUM);
     let reports = inspect_sources(&pipeline).await;
     register_sources(&ctx, &pipeline, &reports).await.unwrap();
     let store = daymark_store::resolve(&out.display().to_string(), None).unwrap();
@@ -185,7 +179,7 @@ async fn build_everything(
     let naive = concat_batches(&batches[0].schema(), &batches).unwrap();
 
     let totals_out = out.join("totals");
-    let totals = totals_only(demo_pipeline(world, &totals_out));
+    let totals = demo_pipeline(world, &totals_out, "");
     let totals_store = daymark_store::resolve(&totals_out.display().to_string(), None).unwrap();
     let tls = layouts(&totals);
     let mode = Some(Knowledge::EventTime);
