@@ -358,19 +358,28 @@ fn direct_numeric(t: Option<&DataType>) -> bool {
 }
 
 /// `x` (of type `t`, [`direct_numeric`]) as the windowed totals read it (smaller
-/// integers as BIGINT, REAL as DOUBLE), and the type to cast an output back to, if the
-/// output's differs (a total of DECIMAL(p, s) comes as DECIMAL(38, s)).
-fn direct_value(x: &str, t: &DataType) -> (String, Option<DataType>) {
+/// integers as BIGINT, REAL as DOUBLE) with the type it is read as, and the type to cast
+/// an output back to, if the output's differs (a total of DECIMAL(p, s) comes as
+/// DECIMAL(38, s)).
+fn direct_value(x: &str, t: &DataType) -> (String, DataType, Option<DataType>) {
     match t {
         DataType::Int8
         | DataType::Int16
         | DataType::Int32
         | DataType::UInt8
         | DataType::UInt16
-        | DataType::UInt32 => (format!("CAST({x} AS BIGINT)"), Some(t.clone())),
-        DataType::Float32 => (format!("CAST({x} AS DOUBLE)"), Some(t.clone())),
-        DataType::Decimal128(_, _) => (x.to_string(), Some(t.clone())),
-        _ => (x.to_string(), None),
+        | DataType::UInt32 => (
+            format!("CAST({x} AS BIGINT)"),
+            DataType::Int64,
+            Some(t.clone()),
+        ),
+        DataType::Float32 => (
+            format!("CAST({x} AS DOUBLE)"),
+            DataType::Float64,
+            Some(t.clone()),
+        ),
+        DataType::Decimal128(_, _) => (x.to_string(), t.clone(), Some(t.clone())),
+        _ => (x.to_string(), t.clone(), None),
     }
 }
 
@@ -627,12 +636,7 @@ fn direct_tail(
                     .get(&(source.clone(), format!("__m{i}")))
                     .cloned()
                     .unwrap_or_else(|| format!("__m{i}"));
-                let (x, back) = direct_value(&stored, &t);
-                let ty = match &t {
-                    DataType::Float32 => DataType::Float64,
-                    DataType::Decimal128(_, _) | DataType::Float64 | DataType::UInt64 => t.clone(),
-                    _ => DataType::Int64,
-                };
+                let (x, ty, back) = direct_value(&stored, &t);
                 call(
                     kind,
                     &rows,
