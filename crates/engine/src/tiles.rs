@@ -737,18 +737,29 @@ impl Split {
         self,
         mut stream: datafusion::execution::SendableRecordBatchStream,
     ) -> Result<BTreeMap<NaiveDate, Ignored>, BuildError> {
-        // The writers of the day being written, one per output.
+        // The writers of the day being written, one per output; the files of earlier days
+        // still being closed and put.
         let mut current: Vec<crate::build::DayWriter> = Vec::new();
+        let mut closing = tokio::task::JoinSet::new();
         let mut done = BTreeMap::new();
-        let streamed = self.stream_into(&mut stream, &mut current, &mut done).await;
+        let streamed = self
+            .stream_into(&mut stream, &mut current, &mut closing, &mut done)
+            .await;
         if let Err(e) = streamed {
             for w in current {
                 w.abandon().await;
             }
+            // The files already closing are left to land (a put cut off halfway could
+            // leave its temporary parts behind); without their markers they are rebuilt
+            // by the next build.
+            while closing.join_next().await.is_some() {}
             return Err(e);
         }
         for w in current {
-            w.finish(None).await?;
+            close_in_background(&mut closing, w, self.first).await?;
+        }
+        while let Some(closed) = closing.join_next().await {
+            joined(closed, self.first)?;
         }
         Ok(done)
     }
@@ -757,6 +768,7 @@ impl Split {
         &self,
         stream: &mut datafusion::execution::SendableRecordBatchStream,
         current: &mut Vec<crate::build::DayWriter>,
+        closing: &mut Closing,
         done: &mut BTreeMap<NaiveDate, Ignored>,
     ) -> Result<(), BuildError> {
         use datafusion::arrow::array::{Array, AsArray};
@@ -809,7 +821,7 @@ impl Split {
                     .ok_or_else(|| internal(format!("tile partition {n} is not a date")))?;
                 if current.first().map(|w| w.day()) != Some(day) {
                     for w in current.drain(..) {
-                        w.finish(None).await?;
+                        close_in_background(closing, w, self.first).await?;
                     }
                     if !self.allowed.contains(&day) || done.contains_key(&day) {
                         return Err(internal(format!(
@@ -846,6 +858,45 @@ impl Split {
         }
         Ok(())
     }
+}
+
+/// Day files of a [`Split`] being closed and put.
+type Closing = tokio::task::JoinSet<Result<(), BuildError>>;
+
+/// How many finished day files one [`Split`] closes and puts while it goes on with the
+/// next days. Closing a file encodes its last pages, and a put creates a folder and a file:
+/// done in line, the stream waited on the file system for each of the thousands of small
+/// files a backfill writes (docs/benchmarks.md, twenty-seventh measurement).
+const CLOSING_AT_ONCE: usize = 4;
+
+/// Closes and puts `w` in a task of its own, after waiting for the oldest file when
+/// [`CLOSING_AT_ONCE`] are in flight.
+async fn close_in_background(
+    closing: &mut Closing,
+    w: crate::build::DayWriter,
+    first: NaiveDate,
+) -> Result<(), BuildError> {
+    while closing.len() >= CLOSING_AT_ONCE {
+        if let Some(closed) = closing.join_next().await {
+            joined(closed, first)?;
+        }
+    }
+    closing.spawn(async move { w.finish(None).await.map(|_| ()) });
+    Ok(())
+}
+
+/// The result of a closing task (a task that panicked is an engine error of `day`, the
+/// query's first day, as in [`write_split`]).
+fn joined(
+    closed: Result<Result<(), BuildError>, tokio::task::JoinError>,
+    day: NaiveDate,
+) -> Result<(), BuildError> {
+    closed.unwrap_or_else(|e| {
+        Err(BuildError::Engine {
+            day,
+            source: datafusion::error::DataFusionError::External(Box::new(e)),
+        })
+    })
 }
 
 /// Raw rows of a partition that no snapshot uses (a null key) or that look wrong (event
