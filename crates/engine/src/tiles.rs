@@ -745,23 +745,37 @@ impl Split {
         let streamed = self
             .stream_into(&mut stream, &mut current, &mut closing, &mut done)
             .await;
-        if let Err(e) = streamed {
-            for w in current {
-                w.abandon().await;
+        let mut failed = match streamed {
+            Ok(()) => {
+                let mut closed = Ok(());
+                for w in current {
+                    if closed.is_ok() {
+                        closed = close_in_background(&mut closing, w, self.first).await;
+                    } else {
+                        w.abandon().await;
+                    }
+                }
+                closed.err()
             }
-            // The files already closing are left to land (a put cut off halfway could
-            // leave its temporary parts behind); without their markers they are rebuilt
-            // by the next build.
-            while closing.join_next().await.is_some() {}
-            return Err(e);
-        }
-        for w in current {
-            close_in_background(&mut closing, w, self.first).await?;
-        }
+            Err(e) => {
+                for w in current {
+                    w.abandon().await;
+                }
+                Some(e)
+            }
+        };
+        // Every file handed off is left to land, on failure too (a put cut off halfway
+        // could leave its temporary parts behind; a tile without its marker is rebuilt by
+        // the next build).
         while let Some(closed) = closing.join_next().await {
-            joined(closed, self.first)?;
+            if let Err(e) = joined(closed, self.first) {
+                failed.get_or_insert(e);
+            }
         }
-        Ok(done)
+        match failed {
+            Some(e) => Err(e),
+            None => Ok(done),
+        }
     }
 
     async fn stream_into(
